@@ -64,3 +64,13 @@ def s3_bucket(s3_options):
     fs.call_s3("create_bucket", Bucket=name)
     fs.invalidate_cache()
     yield name
+
+
+def pytest_collection_modifyitems(config, items):
+    """Skip tests marked ``slow`` unless they were asked for (``-m slow``)."""
+    if "slow" in (config.getoption("-m") or ""):
+        return
+    skip = pytest.mark.skip(reason="slow test: run with -m slow")
+    for item in items:
+        if "slow" in item.keywords:
+            item.add_marker(skip)
