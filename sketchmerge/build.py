@@ -1,0 +1,505 @@
+"""The distributed build: from a dataset URL to a published cut table, on Dask.
+
+Flow (docs/TREE.md has the reduction tree and its cost):
+
+1. The driver lists the dataset and plans work units (:mod:`sketchmerge.sources`).
+2. Each unit gets a cache key: a hash of its fingerprint and of every build
+   option that affects summaries.  Units whose blob is already cached under
+   TABLE are reused, the others become sketch tasks.
+3. Sketch tasks run on the workers: each opens its unit itself, reads only the
+   selected columns, computes row weights, builds one pruned summary per
+   feature and returns one summary-set blob (and caches it).  Arrays never
+   travel; only the unit's address goes out and a blob comes back.
+4. Merge tasks (fan-in ``fan_in``) merge and prune on the workers, bottom-up
+   over a tree fixed by the sorted unit addresses; cached merge nodes are
+   reused whole.  The driver receives only the root blob.
+5. The driver derives edges, encodes the table and publishes it as a new
+   immutable version (:mod:`sketchmerge.store`), unless nothing changed.
+
+Task keys are hashes of their inputs, so retries and reruns are the same work
+and the published content is byte-identical whatever the worker count or the
+scheduling order.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import config
+from ._version import __version__
+from .blob import FORMAT_VERSION, decode_summary_set, encode_summary_set
+from .cuts import decode_table, default_rank_error, encode_table, feature_cuts
+from .errors import FormatError, InputError, PublishRaceError, SchedulerUnavailableError
+from .summary import Summary
+from .tree import a_priori_bound, plan_tree
+from .weights import validate_loss
+
+__all__ = ["BuildSpec", "build", "sketch_unit", "merge_blobs"]
+
+log = logging.getLogger("sketchmerge")
+
+#: bumped whenever the per-unit sketch algorithm changes what it produces
+SKETCH_ALGORITHM = 1
+
+
+@dataclass(frozen=True)
+class BuildSpec:
+    """What every sketch task needs besides its unit (pickled to the workers)."""
+
+    features: tuple[str, ...]
+    weight_column: str | None
+    hessian: str | None
+    prediction_column: str | None
+    prediction_scale: str | None
+    missing_weight: str
+    leaf_capacity: int
+    protocol: str
+    storage_options: dict = field(default_factory=dict, repr=False, compare=False)
+    table_url: str = ""
+    table_options: dict = field(default_factory=dict, repr=False, compare=False)
+
+    def summary_options(self) -> dict:
+        """The options that change what a unit's summaries are (no credentials)."""
+        return {"features": list(self.features), "weight_column": self.weight_column,
+                "hessian": self.hessian, "prediction_column": self.prediction_column,
+                "prediction_scale": self.prediction_scale, "missing_weight": self.missing_weight,
+                "leaf_capacity": self.leaf_capacity, "algorithm": SKETCH_ALGORITHM,
+                "format": FORMAT_VERSION}
+
+    def options_hash(self) -> str:
+        return hashlib.sha256(json.dumps(self.summary_options(), sort_keys=True).encode()).hexdigest()
+
+    def columns_to_read(self) -> list[str]:
+        cols = list(self.features)
+        for c in (self.weight_column, self.prediction_column if self.hessian not in (None, "squared") else None):
+            if c and c not in cols:
+                cols.append(c)
+        return cols
+
+
+# --------------------------------------------------------------------------- worker side
+_STORES: dict = {}
+
+
+def _store(url: str, options: dict):
+    from .store import TableStore
+
+    k = (url, json.dumps(options, sort_keys=True, default=str))
+    st = _STORES.get(k)
+    if st is None:
+        st = _STORES[k] = TableStore(url, storage_options=options or None)
+    return st
+
+
+def _row_weights(arrays: dict, spec: BuildSpec, where: str, rows: int) -> np.ndarray | None:
+    from .summary import check_weights
+    from .weights import hessian
+
+    w = None
+    if spec.weight_column:
+        w = arrays[spec.weight_column]
+        bad = np.isnan(w)
+        if bad.any():
+            if spec.missing_weight == "error":
+                raise InputError(f"{where}: weight column {spec.weight_column!r} is missing at row "
+                                 f"{int(np.argmax(bad))} (use --missing-weight zero to give such rows no weight)")
+            w = np.where(bad, 0.0, w)
+        w = check_weights(w, rows, f"{where}: weight column {spec.weight_column!r}")
+    if spec.hessian and spec.hessian != "squared":
+        p = arrays[spec.prediction_column]
+        bad = np.isnan(p)
+        if bad.any():
+            if spec.missing_weight == "error":
+                raise InputError(f"{where}: prediction column {spec.prediction_column!r} is missing at row "
+                                 f"{int(np.argmax(bad))} (use --missing-weight zero to give such rows no weight)")
+        h = hessian(spec.hessian, np.where(bad, 0.5 if spec.hessian == "logistic" else 0.0, p),
+                    spec.prediction_scale, where=f"{where}: prediction column {spec.prediction_column!r}")
+        if bad.any():
+            h = np.where(bad, 0.0, h)
+        w = h if w is None else w * h
+    return w
+
+
+def _with_dtype(s: Summary, dtype: str) -> Summary:
+    if s.dtype == dtype:
+        return s
+    return Summary(s.values, s.rmin, s.rmax, s.weights, total_weight=s.total_weight, count=s.count,
+                   missing_count=s.missing_count, missing_weight=s.missing_weight, bound=s.bound,
+                   exact=s.is_exact, dtype=dtype)
+
+
+def _leaf(x: np.ndarray, w, capacity: int) -> Summary:
+    try:
+        return Summary.from_values(x, w, capacity=capacity)
+    except TypeError as e:  # a core without direct pruned construction
+        if "capacity" not in str(e):
+            raise
+        return Summary.from_values(x, w).prune(capacity)
+
+
+def sketch_unit(unit, spec: BuildSpec, key: str) -> bytes:
+    """Worker task: read one unit, sketch every feature, cache and return the blob."""
+    from .sources import read_unit
+
+    arrays, dtypes, rows = read_unit(unit, spec.columns_to_read(), protocol=spec.protocol,
+                                     storage_options=spec.storage_options or None)
+    where = f"unit {unit.address}"
+    w = _row_weights(arrays, spec, where, rows)
+    sums = {}
+    for name in spec.features:
+        try:
+            s = _leaf(arrays[name], w, spec.leaf_capacity)
+        except InputError as e:
+            raise InputError(f"{where}, column {name!r}: {e}") from None
+        sums[name] = _with_dtype(s, dtypes.get(name, "float64"))
+    blob = encode_summary_set(sums, {"rows": int(rows)})
+    if spec.table_url:
+        _store(spec.table_url, spec.table_options).put_blob(key, blob)
+    return blob
+
+
+def merge_blobs(blobs: list[bytes], capacity: int) -> bytes:
+    """Merge summary-set blobs feature by feature and prune to ``capacity``."""
+    sets = [decode_summary_set(b) for b in blobs]
+    names = list(sets[0][0])
+    for s, _ in sets[1:]:
+        if list(s) != names:
+            raise FormatError(f"merge: expected the same features in every child, got {list(s)} and {names}")
+    out = {}
+    for n in names:
+        parts = [s[n] for s, _ in sets]
+        out[n] = parts[0].merge(*parts[1:]).prune(capacity)
+    rows = sum(int(m.get("rows", 0)) for _, m in sets)
+    return encode_summary_set(out, {"rows": rows})
+
+
+def merge_task(children: list, capacity: int, key: str, table_url: str, table_options: dict) -> bytes:
+    """Worker task: merge children (blobs, or cached keys fetched from TABLE) and cache the result."""
+    st = _store(table_url, table_options) if table_url else None
+    want = [c[1] for c in children if isinstance(c, tuple) and c and c[0] == "cached"]
+    fetched = st.get_blobs(want) if (want and st is not None) else {}
+    blobs = []
+    for c in children:
+        if isinstance(c, tuple) and c and c[0] == "cached":
+            b = fetched.get(c[1])
+            if b is None:
+                raise FormatError(f"cached blob {c[1]} vanished from the table store during the build")
+            blobs.append(b)
+        else:
+            blobs.append(c)
+    out = merge_blobs(blobs, capacity)
+    if st is not None:
+        st.put_blob(key, out)
+    return out
+
+
+# --------------------------------------------------------------------------- cluster
+class _Cluster:
+    """A client for the build: an existing scheduler or an embedded local cluster."""
+
+    def __init__(self, client=None, scheduler=None, scheduler_file=None, workers=None):
+        self.own = None
+        if client is not None:
+            self.client = client
+            return
+        from distributed import Client
+
+        scheduler = scheduler or (None if scheduler_file else os.environ.get("DASK_SCHEDULER_ADDRESS"))
+        try:
+            if scheduler_file:
+                self.client = Client(scheduler_file=scheduler_file, timeout="20s")
+            elif scheduler:
+                self.client = Client(scheduler, timeout="20s")
+            else:
+                from distributed import LocalCluster
+
+                n = int(workers or os.cpu_count() or 1)
+                # threads: starts in well under a second, and the sketch core spends its
+                # time in numpy and pyarrow code that releases the GIL
+                self.own = LocalCluster(n_workers=1, threads_per_worker=n, processes=False,
+                                        dashboard_address=None)
+                self.client = Client(self.own)
+        except (OSError, TimeoutError) as e:
+            where = scheduler_file or scheduler
+            raise SchedulerUnavailableError(f"cannot reach the Dask scheduler at {where}: {e}") from e
+
+    def close(self):
+        if self.own is not None:
+            self.client.close()
+            self.own.close()
+
+
+def _progress(futures, total: int, json_mode: bool, interval: float):
+    """Wait for leaf futures, logging "n/total units" lines (or dask's bar in a terminal)."""
+    from distributed import as_completed
+
+    if not futures:
+        return
+    if sys.stderr.isatty() and not json_mode:
+        try:
+            from distributed.diagnostics.progressbar import TextProgressBar
+
+            TextProgressBar(futures, complete=True, start=True)
+            return
+        except Exception:  # pragma: no cover - fall back to log lines
+            pass
+    done, last = 0, time.monotonic()
+    for _ in as_completed(futures, with_results=False):
+        done += 1
+        now = time.monotonic()
+        if now - last >= interval or done == len(futures):
+            log.info("%d/%d units sketched", done, total)
+            last = now
+
+
+# --------------------------------------------------------------------------- driver
+def _resolve_options(opts: dict) -> dict:
+    bins = int(config.get("bins", opts.get("bins")))
+    if not 1 <= bins <= 65535:
+        raise InputError(f"bins: expected 1 to 65535, got {bins}")
+    re_ = opts.get("rank_error")
+    rank_error = default_rank_error(bins) if re_ is None else float(re_)
+    if not 0.0 < rank_error < 0.5:
+        raise InputError(f"rank error: expected a number in (0, 0.5), got {rank_error!r}")
+    hess = opts.get("hessian")
+    scale = opts.get("prediction_scale")
+    if hess:
+        scale = validate_loss(hess, scale)
+        if hess != "squared" and not opts.get("prediction_column"):
+            raise InputError(f"--hessian {hess} needs --prediction-column")
+    elif opts.get("prediction_scale"):
+        raise InputError("--prediction-scale needs --hessian")
+    mw = config.get("missing_weight", opts.get("missing_weight"))
+    if mw not in ("error", "zero"):
+        raise InputError(f"missing weight policy: expected error or zero, got {mw!r}")
+    fan_in = int(config.get("fan_in", opts.get("fan_in")))
+    if fan_in < 2:
+        raise InputError(f"fan-in: expected at least 2, got {fan_in}")
+    return dict(bins=bins, rank_error=rank_error, hessian=hess, prediction_scale=scale,
+                missing_weight=mw, fan_in=fan_in)
+
+
+def build(source: str, out: str, *, bins: int | None = None, rank_error: float | None = None,
+          columns=None, exclude=None, weight_column: str | None = None,
+          label_column: str | None = None, hessian: str | None = None,
+          prediction_column: str | None = None, prediction_scale: str | None = None,
+          missing_weight: str | None = None, format: str | None = None,
+          storage_options: dict | None = None, table_storage_options: dict | None = None,
+          client=None, scheduler: str | None = None, scheduler_file: str | None = None,
+          workers: int | None = None, fan_in: int | None = None, byte_budget: int | None = None,
+          full: bool = False, keep: int | None = None, json_mode: bool = False) -> dict:
+    """Build (or refresh) the cut table of a dataset and publish it.
+
+    Parameters mirror ``sketchmerge build`` (see ``sketchmerge build --help``).
+    ``storage_options`` go to fsspec for the source and, unless
+    ``table_storage_options`` is given, for the table too.
+
+    Returns
+    -------
+    dict
+        The build report: ``version``, ``changed``, ``partitions_total``,
+        ``partitions_sketched``, ``partitions_reused``, ``rows``, ``features``
+        (per feature ``name``, ``edges_count``, ``rank_error``, ``missing_weight``
+        and more), ``skipped``, ``seconds``.
+    """
+    from .sources import open_dataset, redact, select_features
+    from .store import TableStore
+
+    t0 = time.perf_counter()
+    o = _resolve_options(dict(bins=bins, rank_error=rank_error, hessian=hessian,
+                              prediction_column=prediction_column,
+                              prediction_scale=prediction_scale, missing_weight=missing_weight,
+                              fan_in=fan_in))
+    so = dict(storage_options or {})
+    tso = dict(table_storage_options if table_storage_options is not None else so)
+    ds = open_dataset(source, fmt=format, storage_options=so or None,
+                      byte_budget=int(config.get("byte_budget", byte_budget)))
+    for role, col in (("weight", weight_column), ("prediction", prediction_column),
+                      ("label", label_column)):
+        if col and col not in ds.columns:
+            raise InputError(f"{role} column {col!r} is not in {ds.source} "
+                             f"(columns: {', '.join(ds.columns)})")
+    reserved = tuple(c for c in (weight_column, label_column,
+                                 prediction_column if o["hessian"] else None) if c)
+    features, skipped = select_features(ds, columns=columns, exclude=exclude, reserved=reserved)
+    if prediction_column and not o["hessian"] and prediction_column not in reserved:
+        features = [f for f in features if f != prediction_column]
+        skipped.append({"column": prediction_column, "reason": "prediction column"})
+    if not features:
+        raise InputError(f"no numeric or boolean feature columns to sketch in {ds.source}")
+
+    store = TableStore(out, storage_options=tso or None)
+    units = sorted(ds.units, key=lambda u: u.address)
+    addresses = [u.address for u in units]
+    # the leaf capacity depends only on the rank error, so it can be fixed first
+    from .tree import capacities
+
+    leaf_cap, _ = capacities(o["rank_error"], 0)
+    spec = BuildSpec(features=tuple(features), weight_column=weight_column, hessian=o["hessian"],
+                     prediction_column=prediction_column if o["hessian"] not in (None, "squared") else None,
+                     prediction_scale=o["prediction_scale"] if o["hessian"] else None,
+                     missing_weight=o["missing_weight"], leaf_capacity=leaf_cap,
+                     protocol=ds.protocol, storage_options=so, table_url=out, table_options=tso)
+    oh = spec.options_hash()
+    leaf_keys = [hashlib.sha256(f"unit|{oh}|{u.fingerprint}".encode()).hexdigest() for u in units]
+    plan = plan_tree(leaf_keys, addresses, o["fan_in"], o["rank_error"], oh)
+    current = store.current()
+    previous = None
+    if current is not None:
+        try:
+            previous = decode_table(store.read_version(current)[1])
+        except FormatError as e:
+            log.warning("current version %s of %s is unreadable (%s); building in full", current, store.url, e)
+
+    cached = set() if full else store.existing_blobs(plan.all_keys())
+    needed: set[str] = set()
+    # walk top-down: a cached node hides its whole subtree
+    by_key = {n.key: n for n in plan.leaves}
+    for lvl in plan.levels:
+        by_key.update({n.key: n for n in lvl})
+    root = plan.root
+    stack = [root] if root else []
+    while stack:
+        k = stack.pop()
+        if k in cached:
+            continue
+        needed.add(k)
+        stack.extend(by_key[k].children)
+    sketch = [n for n in plan.leaves if n.key in needed]
+    reused_leaves = len(plan.leaves) - len(sketch)
+    unit_of = dict(zip(leaf_keys, units))
+
+    root_blob = None
+    if root is None:
+        root_blob = encode_summary_set({f: Summary.empty() for f in features}, {"rows": 0})
+    elif root in cached:
+        root_blob = store.get_blob(root)
+        if root_blob is None:
+            raise FormatError(f"cached root blob {root} vanished from {store.url}")
+    else:
+        root_blob = _run_graph(plan, needed, unit_of, spec, cached, client, scheduler,
+                               scheduler_file, workers, json_mode)
+    sets, meta = decode_summary_set(root_blob)
+    rows = int(meta.get("rows", 0))
+    feats = [feature_cuts(n, sets[n], o["bins"], o["rank_error"]) for n in features]
+
+    options = {"bins": o["bins"], "rank_error": o["rank_error"], "weight_column": weight_column,
+               "label_column": label_column, "hessian": o["hessian"],
+               "prediction_column": prediction_column, "prediction_scale": spec.prediction_scale,
+               "missing_weight": o["missing_weight"], "fan_in": o["fan_in"],
+               "leaf_capacity": plan.leaf_capacity, "node_capacity": plan.node_capacity,
+               "depth": plan.depth, "a_priori_bound": a_priori_bound(o["rank_error"], plan.depth),
+               "columns": list(columns) if columns else None,
+               "exclude": list(exclude) if exclude else None, "format": format}
+    content = {"source": redact(ds.source), "options": options, "rows": rows, "root": root or "",
+               "skipped": skipped,
+               "units": {"address": addresses, "fingerprint": [u.fingerprint for u in units],
+                         "rows": [int(u.rows) for u in units], "nbytes": [int(u.nbytes) for u in units]}}
+    report = {
+        "table": store.url, "source": redact(ds.source),
+        "partitions_total": len(units), "partitions_sketched": len(sketch),
+        "partitions_reused": reused_leaves, "rows": rows,
+        "features": [dict(f.info(), edges_count=int(f.edges.size)) for f in feats],
+        "skipped": skipped,
+    }
+    changed = True
+    if previous is not None and previous.content.get("root") == content["root"] \
+            and previous.content.get("options") == options and previous.content.get("source") == content["source"]:
+        changed = False
+    if changed:
+        version = _publish(store, feats, content, previous, units, plan, o)
+    else:
+        version = current
+    report.update(version=version, changed=changed)
+    if previous is not None and changed:
+        try:
+            from .drift import drift_between
+
+            new = decode_table(store.read_version(version)[1])
+            report["drift"] = drift_between(previous, new)
+        except ImportError:
+            pass
+    if changed:
+        try:
+            report["gc"] = store.gc(keep=int(config.get("keep", keep)),
+                                    grace_seconds=float(config.get("gc_grace_seconds")))
+        except Exception as e:  # gc is housekeeping: never fail a published build on it
+            log.warning("gc after publish failed: %s", e)
+    report["seconds"] = round(time.perf_counter() - t0, 3)
+    return report
+
+
+def _changes(previous, units) -> dict:
+    if previous is None:
+        return {"units_added": len(units), "units_removed": 0, "units_changed": 0}
+    old = dict(zip(previous.content["units"]["address"], previous.content["units"]["fingerprint"]))
+    new = {u.address: u.fingerprint for u in units}
+    added = sum(1 for a in new if a not in old)
+    removed = sum(1 for a in old if a not in new)
+    changed = sum(1 for a in new if a in old and old[a] != new[a])
+    return {"units_added": added, "units_removed": removed, "units_changed": changed}
+
+
+def _created() -> str:
+    # SOURCE_DATE_EPOCH (reproducible-builds convention) pins the creation time
+    epoch = os.environ.get("SOURCE_DATE_EPOCH")
+    t = time.gmtime(int(epoch)) if epoch else time.gmtime()
+    return time.strftime("%Y-%m-%dT%H:%M:%SZ", t)
+
+
+def _publish(store, feats, content, previous, units, plan, o) -> int:
+    attempts = int(config.get("publish_attempts"))
+    last_err = None
+    for _ in range(attempts):
+        current = store.current()
+        version = 1 if current is None else current + 1
+        record = {"created": _created(), "tool": f"sketchmerge {__version__}",
+                  "previous_version": current, "changes": _changes(previous, units)}
+        data = encode_table(feats, version=version, content_extra=content, record=record)
+        try:
+            store.publish(version, data, plan.all_keys())
+            return version
+        except PublishRaceError as e:
+            last_err = e
+            log.warning("version %d of %s was published by another builder; publishing on top", version, store.url)
+    raise PublishRaceError(f"lost the publish race on {store.url} {attempts} times; "
+                           f"retry the build ({last_err})")
+
+
+def _run_graph(plan, needed, unit_of, spec, cached, client, scheduler, scheduler_file, workers,
+               json_mode) -> bytes:
+    dsk = {}
+    leaf_keys = []
+
+    def ref(k):
+        return ("cached", k) if k in cached else "sm-" + k
+
+    for n in plan.leaves:
+        if n.key in needed:
+            dk = "sm-" + n.key
+            dsk[dk] = (sketch_unit, unit_of[n.key], spec, n.key)
+            leaf_keys.append(dk)
+    for lvl in plan.levels:
+        for n in lvl:
+            if n.key in needed:
+                dsk["sm-" + n.key] = (merge_task, [ref(c) for c in n.children], plan.node_capacity,
+                                      n.key, spec.table_url, spec.table_options)
+    root_key = "sm-" + plan.root
+    cl = _Cluster(client, scheduler, scheduler_file, workers)
+    try:
+        futs = cl.client.get(dsk, [root_key] + leaf_keys, sync=False,
+                             retries=int(config.get("retries")))
+        root_fut, leaf_futs = futs[0], futs[1:]
+        _progress(leaf_futs, len(leaf_futs), json_mode, float(config.get("progress_seconds")))
+        del leaf_futs, futs
+        return root_fut.result()
+    finally:
+        cl.close()
