@@ -643,3 +643,42 @@ def test_missing_bucket_is_named(s3_options):
 def test_store_is_public_through_the_module_only():
     # the store is imported by the build and the loader from sketchmerge.store
     assert "TableStore" in store_mod.__all__ and store_mod.__all__ == sorted(store_mod.__all__)
+
+
+def test_storage_messages_are_scrubbed_of_secrets(tmp_path):
+    # an underlying library may quote a credential in its own message; ours never passes it on
+    s = TableStore(str(tmp_path / "t"), storage_options=None, retries=1, backoff_seconds=0.001)
+    s._hidden = (FAKE_SECRET,)
+    s._b.read = lambda name: (_ for _ in ()).throw(ConnectionError(f"auth {FAKE_SECRET} rejected"))
+    with pytest.raises(sketchmerge.StorageError) as info:
+        s.read_version(1)
+    assert FAKE_SECRET not in str(info.value) and "***" in str(info.value)
+
+
+class _OverwritingRacer:
+    """An S3 client whose store honours If-None-Match only loosely: right after our
+    create lands, another builder's unconditional PUT of the same name lands too
+    (the check-then-write window of a store without atomic conditional writes)."""
+
+    def __init__(self, fs, bucket, key_name, their_bytes):
+        self._fs, self._bucket, self._key, self._theirs = fs, bucket, key_name, their_bytes
+
+    def __getattr__(self, name):
+        return getattr(self._fs, name)
+
+    def call_s3(self, method, **kwargs):
+        out = self._fs.call_s3(method, **kwargs)
+        if method == "put_object" and kwargs.get("Key") == self._key and "IfNoneMatch" in kwargs:
+            self._fs.call_s3("put_object", Bucket=self._bucket, Key=self._key, Body=self._theirs)
+        return out
+
+
+def test_s3_create_detects_a_store_that_lost_the_race_silently(s3_options, s3_bucket):
+    s = TableStore(f"s3://{s3_bucket}/t", storage_options=s3_options)
+    theirs = doc(1, "the other builder")
+    s._b.fs = _OverwritingRacer(s._b.fs, s3_bucket, "t/versions/v00000001.cuts", theirs)
+    with pytest.raises(sketchmerge.PublishRaceError):
+        s.publish(1, doc(1), [key(1)])
+    reader = TableStore(f"s3://{s3_bucket}/t", storage_options=s3_options)
+    assert reader.read_version(1) == (1, theirs)
+    assert not {e.name for e in reader._b.list("versions") if e.name.count(".") == 2}  # our attempt withdrawn
