@@ -236,7 +236,8 @@ class Dataset:
     protocol : str
         Canonical fsspec protocol (``"file"``, ``"s3"``, ``"memory"``, ...).
     root : str
-        fs-native folder or prefix that unit addresses are relative to.
+        fs-native folder or prefix that unit addresses are relative to
+        (redacted: for an ``http(s)`` source it names, it does not open).
     units : tuple of Unit
         Sorted by address.
     columns : dict
@@ -442,7 +443,7 @@ def _data_error(e: BaseException, what: str, secrets: tuple[str, ...]) -> NoRetu
 # --------------------------------------------------------------------------- version tokens
 
 _EPOCH = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc)
-_TIME_KEYS = ("mtime", "lastmodified", "last_modified", "updated", "modified",
+_TIME_KEYS = ("mtime", "lastmodified", "last_modified", "last-modified", "updated", "modified",
               "time_modified", "created", "creation_time")
 
 
@@ -617,7 +618,7 @@ def _suffix_format(name: str) -> tuple[str | None, str | None]:
 
 
 def _compression(path: str) -> str | None:
-    low = path.lower().split("?", 1)[0]
+    low = _url_base(path).lower()
     for suf, codec in _CSV_COMPRESSION.items():
         if low.endswith(suf):
             return codec
@@ -663,9 +664,18 @@ def _list_files(fs, path: str, what: str, secrets) -> tuple[str, dict[str, dict]
         if info.get("type") == "directory":
             return path.rstrip("/"), fs.find(path, detail=True, withdirs=False), False
         name = info.get("name", path)
-        return fs._parent(name), {name: info}, True
+        # A signed URL's query may hold slashes; the parent is taken without it.
+        return fs._parent(_url_base(name)), {name: info}, True
     except Exception as e:  # noqa: BLE001 - translated at the storage boundary
         _storage_error(e, what, secrets)
+
+
+def _url_base(name: str) -> str:
+    """An http(s) URL without its query string; other paths unchanged (``?`` is a
+    legal character of object-store keys)."""
+    if name.startswith(("http://", "https://")):
+        return name.split("?", 1)[0].split("#", 1)[0]
+    return name
 
 
 def _hidden(rel: str) -> bool:
@@ -1044,10 +1054,10 @@ def open_dataset(source: str, *, fmt: str | None = None, storage_options: dict |
         info = entries[name]
         if info.get("type", "file") != "file" or name.endswith("/"):
             continue
-        rel = _relative(name, root)
+        rel = _relative(_url_base(name), root)
         if not single and _hidden(rel):
             continue
-        by_ext, _ = _suffix_format(name.split("?", 1)[0])
+        by_ext, _ = _suffix_format(_url_base(name))
         if single and fmt is not None:
             kind = fmt
         elif fmt is None:
@@ -1087,7 +1097,7 @@ def open_dataset(source: str, *, fmt: str | None = None, storage_options: dict |
                 partition.append(k)
         units.extend(_units_of(fi, pl, int(byte_budget)))
     units.sort(key=lambda u: u.address)
-    return Dataset(source=shown, protocol=protocol, root=root, units=tuple(units),
+    return Dataset(source=shown, protocol=protocol, root=redact(root, secrets), units=tuple(units),
                    columns=columns, files=tuple(fi.path for fi in infos),
                    partition_columns=tuple(partition), ignored=tuple(ignored))
 
