@@ -17,9 +17,23 @@ from .errors import (
     SketchmergeError,
     StorageError,
 )
+from .cuts import CutTable, load
 from .summary import Summary
 
+
+def build(source: str, out: str, **options) -> dict:
+    """Build (or refresh) the cut table of ``source`` at ``out``; return the report.
+
+    The options are those of ``sketchmerge build`` with underscores (``bins``,
+    ``rank_error``, ``weight_column``, ``hessian``, ``prediction_column``,
+    ``client``...); see :func:`sketchmerge.job.build`.  Imports dask only when called.
+    """
+    from .job import build as _build
+
+    return _build(source, out, **options)
+
 __all__ = sorted([
+    "CutTable",
     "FormatError",
     "InputError",
     "NoInputError",
@@ -29,4 +43,6 @@ __all__ = sorted([
     "StorageError",
     "Summary",
     "__version__",
+    "build",
+    "load",
 ])

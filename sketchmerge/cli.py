@@ -193,7 +193,7 @@ def _jsonable(o):
 
 # --------------------------------------------------------------------------- commands
 def _cmd_build(args, so) -> int:
-    from .build import build
+    from .job import build
 
     rep = build(args.source, args.out, bins=args.bins, rank_error=args.rank_error,
                 columns=args.columns, exclude=args.exclude, weight_column=args.weight_column,
@@ -370,10 +370,19 @@ def main(argv=None) -> int:
     parser = make_parser()
     args = parser.parse_args(argv)
     level = logging.DEBUG if args.debug else logging.WARNING if args.quiet else logging.INFO
-    logging.basicConfig(level=level, stream=sys.stderr, format="sketchmerge: %(message)s")
-    logging.getLogger("sketchmerge").setLevel(level)
-    for noisy in ("distributed", "asyncio", "fsspec", "s3fs", "botocore", "aiobotocore"):
-        logging.getLogger(noisy).setLevel(logging.DEBUG if args.debug else logging.ERROR)
+    # our own handler on our own logger: library loggers (distributed, fsspec...) stay quiet
+    # unless --debug, and their records never reach stdout
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("sketchmerge: %(message)s"))
+    ours = logging.getLogger("sketchmerge")
+    ours.handlers[:] = [handler]
+    ours.propagate = False
+    ours.setLevel(level)
+    if args.debug:
+        logging.basicConfig(level=logging.DEBUG, stream=sys.stderr)
+    else:
+        for noisy in ("distributed", "asyncio", "fsspec", "s3fs", "botocore", "aiobotocore", "tornado"):
+            logging.getLogger(noisy).setLevel(logging.ERROR)
     try:
         so = parse_storage_options(args.storage_option)
     except argparse.ArgumentTypeError as e:

@@ -59,7 +59,7 @@ def generate(folder: str, rows: int = 400_000, days: int = 4, seed: int = 7) -> 
 
 def run_demo(folder: str, rows: int = 400_000, workers: int | None = None, json_mode: bool = False) -> dict:
     """Generate (once), build, show and verify; print a walk-through unless ``json_mode``."""
-    from .build import build
+    from .job import build
     from .cli import format_build, format_show
     from .cuts import load
     from .verify import format_verify, verify

@@ -26,7 +26,7 @@ _TOL = 1e-9  # float64 summation slack on normalised ranks
 
 def unit_ranks(unit, spec, edges: dict, rate: float | None):
     """Worker task: per feature, weight below / at-or-below each edge, totals, sample stats."""
-    from .build import _row_weights
+    from .job import _row_weights
     from .sources import read_unit
 
     arrays, _, rows = read_unit(unit, spec.columns_to_read(), protocol=spec.protocol,
@@ -80,7 +80,7 @@ def verify(table: str, source: str, *, sample_rows: int | None = None, version: 
     Returns a report with per-feature ``max_rank_error``, ``certified``,
     ``ok``, and an overall ``ok``.
     """
-    from .build import BuildSpec, _Cluster
+    from .job import BuildSpec, _Cluster
     from .cuts import load
     from .sources import open_dataset, redact
 
@@ -160,9 +160,9 @@ def verify(table: str, source: str, *, sample_rows: int | None = None, version: 
 
 
 def format_verify(rep: dict) -> str:
-    lines = [f"verify version {rep['version']} against {rep['source']} "
-             f"({'all rows' if not rep['sample_rate'] else f'sample rate {rep['sample_rate']:.3g}'}, "
-             f"{rep['units']} units)",
+    rate = rep["sample_rate"]
+    scope = "all rows" if not rate else f"sample rate {rate:.3g}"
+    lines = [f"verify version {rep['version']} against {rep['source']} ({scope}, {rep['units']} units)",
              f"{'feature':<24} {'mode':<8} {'measured':>10} {'certified':>10} {'+-3 s.e.':>9}  result"]
     for r in rep["features"]:
         lines.append(f"{r['name'][:24]:<24} {r['mode']:<8} {r['max_rank_error']:>10.3g} "

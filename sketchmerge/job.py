@@ -224,8 +224,12 @@ class _Cluster:
                 n = int(workers or os.cpu_count() or 1)
                 # threads: starts in well under a second, and the sketch core spends its
                 # time in numpy and pyarrow code that releases the GIL
+                # every listening socket on loopback only
                 self.own = LocalCluster(n_workers=1, threads_per_worker=n, processes=False,
-                                        dashboard_address=None)
+                                        dashboard_address="127.0.0.1:0",
+                                        worker_dashboard_address="127.0.0.1:0",
+                                        silence_logs=logging.DEBUG if log.isEnabledFor(logging.DEBUG)
+                                        else logging.ERROR)
                 self.client = Client(self.own)
         except (OSError, TimeoutError) as e:
             where = scheduler_file or scheduler
