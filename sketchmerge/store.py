@@ -977,18 +977,22 @@ class TableStore:
             out.append(m)
         return out
 
-    def _resolve_manifest(self, v: int) -> tuple[Manifest, bytes | None]:
-        """The manifest of published version ``v``; second item: bytes to promote, if not canonical."""
+    def _read_canonical(self, v: int) -> Manifest | None:
         name = _canonical_name(v)
         try:
             raw = self._io("read", name, self._b.read, name)
         except FileNotFoundError:
-            raw = None
-        if raw is not None:
-            m = decode_manifest(raw, self._where(name))
-            if m.version != v:
-                raise FormatError(f"{self._where(name)}: expected version {v}, got {m.version}")
-            return m, None
+            return None
+        m = decode_manifest(raw, self._where(name))
+        if m.version != v:
+            raise FormatError(f"{self._where(name)}: expected version {v}, got {m.version}")
+        return m
+
+    def _resolve_manifest(self, v: int) -> tuple[Manifest, bytes | None]:
+        """The manifest of published version ``v``; second item: bytes to promote, if not canonical."""
+        canonical = self._read_canonical(v)
+        if canonical is not None:
+            return canonical, None
         # the winner died between its commit and promoting its manifest: find the
         # attempt manifests whose recorded checksum matches the published document
         try:
@@ -1000,6 +1004,10 @@ class TableStore:
         matching = [m for m in self._attempt_manifests(v, attempts.get(v, ()))
                     if m.document_sha256 == digest and m.document_size == len(document)]
         if not matching:
+            # the winner may have promoted its attempt (and removed it) meanwhile
+            canonical = self._read_canonical(v)
+            if canonical is not None:
+                return canonical, None
             raise NoInputError(f"table {self.url}: expected a manifest for version {v} "
                                f"({_canonical_name(v)} or an attempt matching sha256 {digest}), got none")
         # identical documents from racing builders: keep every key any of them
