@@ -330,7 +330,7 @@ def _cmd_diff(args, so) -> int:
     rep = diff(args.table, from_version=args.from_version, to_version=args.to_version,
                storage_options=so or None)
     if args.plot:
-        from .plots import plot_drift
+        from .drift import plot_drift
 
         plot_drift(rep, args.plot)
     over = [] if args.fail_above is None else [f["name"] for f in rep["features"] if f["psi"] > args.fail_above]
