@@ -293,7 +293,7 @@ def test_bad_version_numbers_are_rejected(make, bad):
 def test_nothing_is_written_outside_the_table(tmp_path):
     before = set(os.listdir(tmp_path))
     s = TableStore(str(tmp_path / "t"))
-    for bad in ("../../evil", "/tmp/evil", "0123456789abcdef/../../evil"):
+    for bad in ("../../evil", "/abs/evil", "0123456789abcdef/../../evil"):
         with pytest.raises(ValueError):
             s.put_blob(bad, b"x")
     s.put_blob(key(1), b"x")
