@@ -68,7 +68,6 @@ Messages name the file, unit and column and never contain credentials
 
 from __future__ import annotations
 
-import dataclasses
 import datetime as _dt
 import email.utils
 import errno as _errno
@@ -127,7 +126,7 @@ _CSV_COMPRESSION = {".gz": "gzip", ".bz2": "bz2", ".zst": "zstd"}
 # --------------------------------------------------------------------------- redaction
 
 _URL = re.compile(r"(?P<scheme>[A-Za-z][A-Za-z0-9+.\-]*://)(?P<rest>[^\s'\"<>]*)")
-_SECRET_KEY = re.compile(r"key|secret|token|passw|credential|sas|signature|auth|sig",
+_SECRET_KEY = re.compile(r"key|secret|token|passw|credential|sas|signature(?!_version)|auth",
                          re.IGNORECASE)
 
 
@@ -135,13 +134,9 @@ def _clean_url(m: re.Match) -> str:
     rest = m.group("rest")
     # A query string may carry a signature or SAS token; none of it is needed
     # to name a file, so it goes entirely.
-    cut = len(rest)
-    for ch in "?#":
-        i = rest.find(ch)
-        if ch == "?" and i >= 0:
-            cut = min(cut, i)
-    tail = "?***" if cut < len(rest) else ""
-    rest = rest[:cut]
+    q = rest.find("?")
+    tail = "?***" if q >= 0 else ""
+    rest = rest if q < 0 else rest[:q]
     slash = rest.find("/")
     authority = rest if slash < 0 else rest[:slash]
     if "@" in authority:
@@ -1230,8 +1225,10 @@ def _float64(col: pa.ChunkedArray | pa.Array, name: str, where: str) -> tuple[np
     return np.ascontiguousarray(out, dtype=np.float64), tname
 
 
-def _read_parquet(f, unit: Unit, cols: list[str], where: str):
-    pf = pq.ParquetFile(f, pre_buffer=True)
+def _read_parquet(f, unit: Unit, cols: list[str], where: str, remote: bool):
+    # On object storage, pre-buffering coalesces the selected column chunks
+    # into few range requests; locally it would only hold a second copy.
+    pf = pq.ParquetFile(f, pre_buffer=remote)
     names = pf.schema_arrow.names
     _check_duplicates(names, where)
     n = pf.metadata.num_row_groups
@@ -1430,7 +1427,8 @@ def read_unit(unit: Unit, columns: list[str], *, protocol: str,
                     arrays, rows, kinds = _read_csv(f, unit, cols, where)
                 else:
                     if unit.fmt == "parquet":
-                        raw, rows = _read_parquet(f, unit, cols, where)
+                        raw, rows = _read_parquet(f, unit, cols, where,
+                                                  remote=protocol not in _LOCAL_PROTOCOLS)
                     else:
                         raw, rows = _read_arrow(f, unit, cols, where, size)
                     arrays = {}
