@@ -32,7 +32,7 @@ class InputError(SketchmergeError, ValueError):
 
 
 class NoInputError(SketchmergeError, FileNotFoundError):
-    """The source matched no readable data files."""
+    """Nothing to read: the source matched no data files, or a table or version does not exist."""
 
     exit_code = 4
 

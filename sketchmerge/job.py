@@ -363,7 +363,18 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
         except FormatError as e:
             log.warning("current version %s of %s is unreadable (%s); building in full", current, store.url, e)
 
-    cached = set() if full else store.existing_blobs(plan.all_keys())
+    # reuse only blobs the current version's manifest names: gc never deletes those, while an
+    # unreferenced blob (say, from a build that died before publishing) may vanish under a
+    # concurrent gc between this check and our publish
+    if full or current is None:
+        cached = set()
+    else:
+        try:
+            kept = set(store.manifest(current))
+        except Exception as e:  # an unreadable manifest only costs a full build
+            log.warning("manifest of version %s of %s is unreadable (%s); building in full", current, store.url, e)
+            kept = set()
+        cached = store.existing_blobs([k for k in plan.all_keys() if k in kept])
     needed: set[str] = set()
     # walk top-down: a cached node hides its whole subtree
     by_key = {n.key: n for n in plan.leaves}
