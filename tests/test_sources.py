@@ -16,7 +16,9 @@ from __future__ import annotations
 import calendar
 import datetime as dt
 import gzip
+import hashlib
 import io
+import json
 import os
 import pickle
 import subprocess
@@ -31,6 +33,8 @@ import pyarrow.ipc as pipc
 import pyarrow.parquet as pq
 import pytest
 from fsspec.implementations.memory import MemoryFileSystem
+from hypothesis import given
+from hypothesis import strategies as st
 
 from sketchmerge import sources as S
 from sketchmerge.errors import InputError, NoInputError, StorageError
@@ -728,3 +732,30 @@ def test_filesystem_is_cached():
     assert S.filesystem("file", {}) is S.filesystem("file", None)
     with pytest.raises(InputError, match="protocol"):
         S.filesystem("no-such-protocol-xyz")
+
+
+# --------------------------------------------------------------------------- properties and pinned encodings
+
+@given(st.datetimes(min_value=dt.datetime(1971, 1, 1), max_value=dt.datetime(2200, 1, 1)))
+def test_time_token_agrees_across_representations(when):
+    """A listing may give a datetime, float seconds or an ISO string for one instant."""
+    aware = when.replace(tzinfo=dt.timezone.utc)
+    expect = (calendar.timegm(aware.timetuple()) * 10**6 + aware.microsecond) * 1000
+    tokens = {S.version_token({"mtime": aware}), S.version_token({"created": aware.timestamp()}),
+              S.version_token({"LastModified": aware.isoformat()}),
+              S.version_token({"last_modified": when})}
+    assert tokens == {f"mtime:{expect}"}
+
+
+def test_fingerprint_encoding_is_pinned(memfs):
+    """The fingerprint keys cached work across releases, so its encoding is fixed:
+    sha256 of the compact JSON array [tag, address, size, token, parts]."""
+    put_parquet(memfs, "/pin/a.parquet", crates(10))
+    ds = S.open_dataset("memory://pin")
+    u = ds.units[0]
+    info = memfs.info("/pin/a.parquet")
+    doc = json.dumps(["sketchmerge.unit/1", u.address, info["size"], S.version_token(info),
+                      list(u.parts)], separators=(",", ":"))
+    assert u.fingerprint == hashlib.sha256(doc.encode()).hexdigest()
+    assert S._fingerprint("day=1/a.parquet#rg=0-1", 1234, "etag:abc", (0, 1)) == hashlib.sha256(
+        b'["sketchmerge.unit/1","day=1/a.parquet#rg=0-1",1234,"etag:abc",[0,1]]').hexdigest()
