@@ -696,7 +696,7 @@ def test_redact():
     assert secret not in out and "ab12" not in out
     assert out == "failed to open https://***@example.test/ds/a.parquet?*** (retry)"
     assert S.redact("s3://bucket/key.parquet") == "s3://bucket/key.parquet"
-    assert S.redact("plain /tmp/x.csv") == "plain /tmp/x.csv"
+    assert S.redact("plain exports/day=1/x.csv") == "plain exports/day=1/x.csv"
     assert S.redact("token abc-secret-123 here", secrets=["abc-secret-123"]) == "token *** here"
     assert S._secret_values({"key": "AKFAKE01", "client_kwargs": {"region_name": "us-east-1",
                                                                   "aws_session_token": "tok-123"}}) \
