@@ -62,6 +62,7 @@ class BuildSpec:
     missing_weight: str
     leaf_capacity: int
     protocol: str
+    dtypes: tuple = ()  # (feature, unified source type) pairs: files lacking a column report no type
     storage_options: dict = field(default_factory=dict, repr=False, compare=False)
     table_url: str = ""
     table_options: dict = field(default_factory=dict, repr=False, compare=False)
@@ -71,7 +72,8 @@ class BuildSpec:
         return {"features": list(self.features), "weight_column": self.weight_column,
                 "hessian": self.hessian, "prediction_column": self.prediction_column,
                 "prediction_scale": self.prediction_scale, "missing_weight": self.missing_weight,
-                "leaf_capacity": self.leaf_capacity, "algorithm": SKETCH_ALGORITHM,
+                "leaf_capacity": self.leaf_capacity, "dtypes": [list(p) for p in self.dtypes],
+                "algorithm": SKETCH_ALGORITHM,
                 "format": FORMAT_VERSION}
 
     def options_hash(self) -> str:
@@ -154,12 +156,13 @@ def sketch_unit(unit, spec: BuildSpec, key: str) -> bytes:
     where = f"unit {unit.address}"
     w = _row_weights(arrays, spec, where, rows)
     sums = {}
+    unified = dict(spec.dtypes)
     for name in spec.features:
         try:
             s = _leaf(arrays[name], w, spec.leaf_capacity)
         except InputError as e:
             raise InputError(f"{where}, column {name!r}: {e}") from None
-        sums[name] = _with_dtype(s, dtypes.get(name, "float64"))
+        sums[name] = _with_dtype(s, unified.get(name) or dtypes.get(name, "float64"))
     blob = encode_summary_set(sums, {"rows": int(rows)})
     if spec.table_url:
         _store(spec.table_url, spec.table_options).put_blob(key, blob)
@@ -351,7 +354,8 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
                      prediction_column=prediction_column if o["hessian"] not in (None, "squared") else None,
                      prediction_scale=o["prediction_scale"] if o["hessian"] else None,
                      missing_weight=o["missing_weight"], leaf_capacity=leaf_cap,
-                     protocol=ds.protocol, storage_options=so, table_url=out, table_options=tso)
+                     protocol=ds.protocol, dtypes=tuple((f, str(ds.columns.get(f, "float64"))) for f in features),
+                     storage_options=so, table_url=out, table_options=tso)
     oh = spec.options_hash()
     leaf_keys = [hashlib.sha256(f"unit|{oh}|{u.fingerprint}".encode()).hexdigest() for u in units]
     plan = plan_tree(leaf_keys, addresses, o["fan_in"], o["rank_error"], oh)
