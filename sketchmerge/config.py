@@ -17,7 +17,7 @@ DEFAULTS: dict[str, object] = {
     "byte_budget": 64 << 20,          # group small Parquet row groups up to this many bytes
     "keep": 10,                       # versions kept by gc (the current one always)
     "gc_grace_seconds": 6 * 3600.0,   # never delete a cached blob younger than this
-    "retries": 3,                     # dask task retries on transient failures
+    "retries": 3,                     # retries of a read after a transient storage error
     "publish_attempts": 3,            # republish-on-top attempts after a lost race
     "missing_weight": "error",        # rows with a missing weight/prediction: error | zero
     "progress_seconds": 10.0,         # period of "n/total units" log lines off a terminal

@@ -37,7 +37,7 @@ from . import config
 from ._version import __version__
 from .blob import FORMAT_VERSION, decode_summary_set, encode_summary_set
 from .cuts import decode_table, default_rank_error, encode_table, feature_cuts
-from .errors import FormatError, InputError, PublishRaceError, SchedulerUnavailableError
+from .errors import FormatError, InputError, PublishRaceError, SchedulerUnavailableError, StorageError
 from .summary import Summary
 from .tree import a_priori_bound, plan_tree
 from .weights import validate_loss
@@ -130,6 +130,24 @@ def _row_weights(arrays: dict, spec: BuildSpec, where: str, rows: int) -> np.nda
     return w
 
 
+def with_retries(fn, what: str, attempts: int | None = None, base_delay: float = 0.2):
+    """Call ``fn``, retrying transient storage errors (StorageError) with exponential backoff.
+
+    Bad input (InputError, FormatError...) is deterministic and fails at once: retrying it
+    would only repeat the same error, which is why dask's own task retries stay off.
+    """
+    n = int(config.get("retries", attempts)) + 1
+    for i in range(n):
+        try:
+            return fn()
+        except StorageError as e:
+            if i == n - 1:
+                raise StorageError(f"{what}: still failing after {n} attempts: {e}") from e
+            delay = base_delay * (2 ** i)
+            log.warning("%s: transient storage error (%s); retrying in %.1f s", what, e, delay)
+            time.sleep(delay)
+
+
 def _with_dtype(s: Summary, dtype: str) -> Summary:
     if s.dtype == dtype:
         return s
@@ -151,8 +169,10 @@ def sketch_unit(unit, spec: BuildSpec, key: str) -> bytes:
     """Worker task: read one unit, sketch every feature, cache and return the blob."""
     from .sources import read_unit
 
-    arrays, dtypes, rows = read_unit(unit, spec.columns_to_read(), protocol=spec.protocol,
-                                     storage_options=spec.storage_options or None)
+    arrays, dtypes, rows = with_retries(
+        lambda: read_unit(unit, spec.columns_to_read(), protocol=spec.protocol,
+                          storage_options=spec.storage_options or None),
+        f"reading unit {unit.address}")
     where = f"unit {unit.address}"
     w = _row_weights(arrays, spec, where, rows)
     sums = {}
@@ -514,8 +534,9 @@ def _run_graph(plan, needed, unit_of, spec, cached, client, scheduler, scheduler
     root_key = "sm-" + plan.root
     cl = _Cluster(client, scheduler, scheduler_file, workers)
     try:
-        futs = cl.client.get(dsk, [root_key] + leaf_keys, sync=False,
-                             retries=int(config.get("retries")))
+        # no dask-level retries: transient storage errors are retried inside the tasks, and a
+        # lost worker's tasks are recomputed by the scheduler anyway
+        futs = cl.client.get(dsk, [root_key] + leaf_keys, sync=False)
         root_fut, leaf_futs = futs[0], futs[1:]
         _progress(leaf_futs, len(leaf_futs), json_mode, float(config.get("progress_seconds")))
         del leaf_futs, futs
