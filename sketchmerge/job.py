@@ -272,9 +272,14 @@ def _progress(futures, total: int, json_mode: bool, interval: float):
         return
     if sys.stderr.isatty() and not json_mode:
         try:
+            import contextlib
+
             from distributed.diagnostics.progressbar import TextProgressBar
 
-            TextProgressBar(futures, complete=True, start=True)
+            # dask's bar writes to stdout; human output belongs on stderr
+            with contextlib.redirect_stdout(sys.stderr):
+                TextProgressBar(futures, complete=True, start=True)
+                sys.stderr.write("\n")
             return
         except Exception:  # pragma: no cover - fall back to log lines
             pass
