@@ -26,6 +26,8 @@ Missing values are NaN: they are counted in ``missing_count`` and
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 
 from .errors import InputError
@@ -91,26 +93,578 @@ def check_weights(weights, n: int, name: str = "weights") -> np.ndarray:
     return w
 
 
-def exact_entries(x: np.ndarray, w: np.ndarray | None):
-    """Distinct sorted values and their weight sums of NaN-free float64 ``x``.
+# ---------------------------------------------------------------------------
+# Construction.  Inputs are NaN-free float64 arrays; negative zeros may remain
+# (they compare equal to +0.0, and float_keys folds them into +0.0's key).
+#
+# Measured on the reference machine (benchmarks/README.md), fresh memory is
+# the dominant cost at work-unit sizes: the first touch of every 4 KiB page
+# of a new array faults, which costs more than the arithmetic on it.  So the
+# per-row temporaries live in per-thread scratch buffers that are reused from
+# call to call, and only arrays a summary keeps are allocated fresh.
+# ---------------------------------------------------------------------------
+_SIGN = np.int64(-(2**63))
+_LOW63 = np.int64(2**63 - 1)
+_U64_MAX = np.uint64(2**64 - 1)
+_KEY_NEG_ZERO = np.uint64(2**63 - 1)   # float_keys(-0.0) before folding; +0.0 is 2**63
+_SAMPLE = 4096          # strided sample that picks the first-level map
+_FINISH_ROWS = 4096     # rows left in refined cells: sort them instead of bucketing again
+_FIRST_BITS = 16        # at most 2**16 first-level cells
+_SPLIT = 1              # sub-cells per row when refining a cell
+_SCRATCH_MAX = 1 << 21  # scratch buffers up to this many elements are kept per thread
+EXACT_METHODS = ("auto", "sort", "count", "radix", "buckets")
 
-    This is the hot path of the whole product.  Candidates were measured
-    (benchmarks/README.md); this picks per input the fastest exact method:
-    a plain sort when unweighted, an argsort otherwise.
+_tls = threading.local()
+
+
+def _scratch(slot: str, n: int, dtype) -> np.ndarray:
+    """A per-thread scratch array of ``n`` elements (garbage contents); never return one."""
+    dt = np.dtype(dtype)
+    if n > _SCRATCH_MAX:
+        return np.empty(n, dt)
+    bufs = getattr(_tls, "bufs", None)
+    if bufs is None:
+        bufs = _tls.bufs = {}
+    need = n * dt.itemsize
+    buf = bufs.get(slot)
+    if buf is None or buf.nbytes < need:
+        buf = bufs[slot] = np.empty(max(need, 1 << 16), np.uint8)
+    return buf[:need].view(dt)
+
+
+def float_keys(x, out: np.ndarray | None = None) -> np.ndarray:
+    """Order-preserving uint64 image of float64 bits, with ``-0.0`` folded into ``+0.0``.
+
+    Non-negative floats get their sign bit set and negative floats have every
+    bit flipped, so unsigned integer order is float order.  Written into
+    ``out`` (a uint64 array of the same length) when given.
     """
+    i = np.ascontiguousarray(x, dtype=_F8).view(np.int64)
+    k = np.right_shift(i, 63, out=None if out is None else out.view(np.int64))
+    np.bitwise_and(k, _LOW63, out=k)
+    np.bitwise_xor(k, i, out=k)
+    np.bitwise_xor(k, _SIGN, out=k)
+    k = k.view(np.uint64)
+    np.add(k, k == _KEY_NEG_ZERO, out=k, casting="unsafe")
+    return k
+
+
+def key_values(k) -> np.ndarray:
+    """Inverse of :func:`float_keys` (a new float64 array shaped like ``k``)."""
+    a = np.asarray(k, dtype=np.uint64)
+    i = np.bitwise_xor(a.reshape(-1).view(np.int64), _SIGN)
+    m = np.right_shift(i, 63)
+    np.bitwise_and(m, _LOW63, out=m)
+    np.bitwise_xor(i, m, out=i)
+    return i.view(_F8).reshape(a.shape)
+
+
+def _key_stats(k: np.ndarray):
+    """``(kmin, tz, bits)``: the smallest key, the trailing zero bits shared by every
+    ``k - kmin`` and the bit length of ``(max - kmin) >> tz``."""
+    kmin = k.min()
+    span = int(k.max()) - int(kmin)
+    if span == 0:
+        return kmin, 0, 0
+    orv = int(np.bitwise_or.reduce(k - kmin))
+    tz = (orv & -orv).bit_length() - 1
+    return kmin, tz, (span >> tz).bit_length()
+
+
+def _run_starts(s: np.ndarray) -> np.ndarray | None:
+    """Start of every run of equal values in sorted ``s``; None when all are distinct."""
+    n = s.shape[0]
+    change = _scratch("runs", n, bool)
+    change[0] = True
+    np.not_equal(s[1:], s[:-1], out=change[1:])
+    if change.all():
+        return None
+    return np.flatnonzero(change)
+
+
+def _run_lengths(starts: np.ndarray, n: int) -> np.ndarray:
+    out = np.empty(starts.shape[0], _F8)
+    np.subtract(starts[1:], starts[:-1], out=out[:-1], casting="unsafe")
+    out[-1] = n - starts[-1]
+    return out
+
+
+def _distinct(s: np.ndarray, ws: np.ndarray | None):
+    """Distinct values of sorted ``s`` and their weights (None: one per row, all distinct)."""
+    starts = _run_starts(s)
+    if starts is None:
+        return s, ws
+    if ws is None:
+        return s[starts], _run_lengths(starts, s.shape[0])
+    return s[starts], np.add.reduceat(ws, starts)
+
+
+def _fold_zero(xu: np.ndarray) -> np.ndarray:
+    """Float comparison sorts may keep -0.0 as a run's representative: make it +0.0."""
+    np.add(xu, 0.0, out=xu)
+    return xu
+
+
+def _exact_sort(x, w):
+    """Comparison sort: np.sort unweighted; weighted, one sort of packed
+    ``(key << index bits) | row`` integers when they fit in 64 bits, else argsort."""
+    n = x.shape[0]
+    if w is None:
+        xs = np.sort(x)
+        xu, wu = _distinct(xs, None)
+        return _fold_zero(xu), wu
+    k = float_keys(x)
+    kmin, tz, bits = _key_stats(k)
+    ib = max(1, (n - 1).bit_length())
+    if bits + ib <= 64:
+        k -= kmin
+        if tz:
+            np.right_shift(k, np.uint64(tz), out=k)
+        np.left_shift(k, np.uint64(ib), out=k)
+        np.bitwise_or(k, np.arange(n, dtype=np.uint64), out=k)
+        k.sort()
+        order = np.bitwise_and(k, np.uint64((1 << ib) - 1), out=_scratch("order", n, np.uint64))
+        ws = np.take(w, order.view(np.int64))
+        np.right_shift(k, np.uint64(ib), out=k)
+        ku, wu = _distinct(k, ws)
+        if tz:
+            ku = np.left_shift(ku, np.uint64(tz), out=ku if ku is k else None)
+        ku += kmin
+        return key_values(ku), wu
+    order = np.argsort(x)
+    xu, wu = _distinct(x[order], w[order])
+    return _fold_zero(xu), wu
+
+
+def _reduced_keys(x, slot):
+    """Keys minus the smallest key, shifted right by their shared trailing zeros (scratch)."""
+    k = float_keys(x, out=_scratch(slot, x.shape[0], np.uint64))
+    kmin, tz, bits = _key_stats(k)
+    k -= kmin
+    if tz:
+        np.right_shift(k, np.uint64(tz), out=k)
+    return k, kmin, tz, bits
+
+
+def _expand_keys(r, kmin, tz):
+    r = r.astype(np.uint64, copy=True)
+    if tz:
+        np.left_shift(r, np.uint64(tz), out=r)
+    r += kmin
+    return key_values(r)
+
+
+def _exact_count(x, w, reduced=None):
+    """Counting: one histogram bin per possible reduced key (for keys of few significant bits)."""
+    r, kmin, tz, bits = _reduced_keys(x, "keys") if reduced is None else reduced
+    r = r.view(np.int64)
+    size = 1 << bits
+    cnt = np.bincount(r, minlength=size)
+    nz = np.flatnonzero(cnt)
+    wu = cnt[nz].astype(_F8) if w is None else np.bincount(r, weights=w, minlength=size)[nz]
+    return _expand_keys(nz, kmin, tz), wu
+
+
+def _exact_radix(x, w, reduced=None):
+    """LSD radix sort of the reduced keys, 16 bits per pass (numpy's stable argsort of
+    uint16 is a counting sort)."""
+    n = x.shape[0]
+    d, kmin, tz, bits = _reduced_keys(x, "keys") if reduced is None else reduced
+    other = _scratch("keys2", n, np.uint64)
+    dig = _scratch("digit", n, np.uint16)
+    tmp = _scratch("digit64", n, np.uint64)
+    perm = None
+    shift = 0
+    while shift < bits:
+        step = min(16, bits - shift)
+        np.right_shift(d, np.uint64(shift), out=tmp)
+        np.copyto(dig, tmp, casting="unsafe")  # keeps the low 16 bits
+        if step < 16:
+            np.bitwise_and(dig, np.uint16((1 << step) - 1), out=dig)
+        o = np.argsort(dig, kind="stable")
+        np.take(d, o, out=other, mode="clip")  # indices are valid; "clip" skips out's buffering
+        d, other = other, d
+        perm = o if perm is None else perm[o]
+        shift += step
+    ku, wu = _distinct(d, None if w is None else np.take(w, perm))
+    return _expand_keys(ku, kmin, tz), wu
+
+
+def _exact_buckets(x, w):
+    """One bucket pass: buckets holding one value are taken as they are; only the
+    rows of buckets holding several values are sorted."""
+    n = x.shape[0]
+    k = float_keys(x, out=_scratch("keys", n, np.uint64))
+    cells, m, _ = _first_level(x, w, n, float(x.min()), float(x.max()))
+    cnt = np.bincount(cells, minlength=m)
+    cmin = np.full(m, _U64_MAX, dtype=np.uint64)
+    cmax = np.zeros(m, dtype=np.uint64)
+    np.minimum.at(cmin, cells, k)
+    np.maximum.at(cmax, cells, k)
+    single = (cnt > 0) & (cmin == cmax)
+    sk = cmin[single]
+    sw = cnt[single].astype(_F8) if w is None else np.bincount(cells, weights=w, minlength=m)[single]
+    multi = (cnt > 0) & ~single
+    if not multi.any():
+        return key_values(sk), sw
+    rows = np.flatnonzero(np.take(multi, cells, out=_scratch("flags", n, bool)))
+    kr = k[rows]
+    o = np.argsort(kr)
+    mk, mw = _distinct(kr[o], None if w is None else w[rows][o])
+    if mw is None:
+        mw = np.ones(mk.shape[0], _F8)
+    allk = np.concatenate((sk, mk))
+    allw = np.concatenate((sw, mw))
+    o = np.argsort(allk)  # the two parts hold disjoint keys
+    return key_values(allk[o]), allw[o]
+
+
+def _exact_entries(x, w, method="auto"):
+    """:func:`exact_entries`, with ``None`` weights meaning one row per distinct value."""
     n = x.shape[0]
     if n == 0:
         return np.empty(0, _F8), np.empty(0, _F8)
+    if method not in EXACT_METHODS:
+        raise ValueError(f"method: expected one of {EXACT_METHODS}, got {method!r}")
+    if method == "sort":
+        return _exact_sort(x, w)
+    if method == "buckets":
+        return _exact_buckets(x, w)
+    reduced = _reduced_keys(x, "keys")
+    bits = reduced[3]
+    if bits == 0:
+        return key_values(reduced[1:2]), np.array([float(n) if w is None else float(w.sum())])
+    if method == "count" or (method == "auto" and (1 << bits) <= max(1 << 16, 2 * n)):
+        if bits > 26:
+            raise ValueError(f"method 'count': expected at most 26 significant key bits, got {bits}")
+        return _exact_count(x, w, reduced)
+    if method == "radix" or (method == "auto" and bits <= 32):
+        return _exact_radix(x, w, reduced)
+    step = max(1, n // 1024)
+    sample = np.sort(reduced[0][::step])
+    if _sorted_unique(sample).shape[0] * 4 <= sample.shape[0]:  # many repeats: few distinct
+        return _exact_buckets(x, w)
+    return _exact_sort(x, w)
+
+
+def exact_entries(x: np.ndarray, w: np.ndarray | None, method: str = "auto"):
+    """Distinct sorted values and their weight sums of NaN-free float64 ``x``.
+
+    This is the hot path of exact construction.  ``method`` picks a candidate;
+    all give the same values and, up to the summation order of float weights,
+    the same weights:
+
+    ``"sort"``     np.sort (unweighted) or one sort of packed (key, row) integers;
+    ``"count"``    one histogram bin per possible value, for values whose keys
+                   differ in few significant bits (small integers, codes, flags);
+    ``"radix"``    LSD radix sort of the keys, 16 bits per pass;
+    ``"buckets"``  one bucket pass; only buckets holding several values are sorted;
+    ``"auto"``     (default) picks by the significant key bits and a sample's
+                   repeat rate; the measurements behind the choice are in
+                   benchmarks/README.md.
+    """
+    xu, wu = _exact_entries(x, w, method)
+    return xu, (np.ones(xu.shape[0], _F8) if wu is None else wu)
+
+
+def _first_level(x, w, n, xmin, xmax):
+    """Map every row to a first-level cell by a monotone function of its value.
+
+    The map follows the data's binades (the sign-and-exponent field of the
+    key): each binade between the minimum and the maximum gets one cell plus
+    cells in proportion to its share of a strided sample's weight, and a row's
+    cell within its binade is linear in the top 16 mantissa bits.  Cells hold
+    roughly equal weight for light and heavy tails alike (a map linear in the
+    value fails on heavy tails, one linear in the key wastes most cells on the
+    tiny binades around zero).  A value holding at least 1/20 of the sample (a
+    point mass such as zero or a sentinel) gets a cell of its own so its rows
+    never need refining.  Any monotone map is correct; the map only decides
+    how many rows the later levels see.
+
+    Returns ``(cells, M, heavy_cell)``: ``cells`` is a scratch buffer,
+    ``heavy_cell`` the index of the point mass's own cell or -1.
+    """
+    m_bits = int(min(_FIRST_BITS, max(8, (max(n // 4, 1) - 1).bit_length())))
+    step = max(1, n // _SAMPLE)
+    sample = x[::step]
+    sk = float_keys(sample)
+    sw = None if w is None else w[::step]
+    heavy = None
+    sorted_k = np.sort(sk)
+    starts = _run_starts(sorted_k)
+    if starts is not None and starts.shape[0] > 1:
+        runs = _run_lengths(starts, sorted_k.shape[0])
+        top = int(np.argmax(runs))
+        if runs[top] * 20 >= sorted_k.shape[0]:
+            heavy = sorted_k[starts[top]]
+            keep = sk != heavy
+            sk = sk[keep]
+            sw = None if sw is None else sw[keep]
+    emin, emax = (int(e) >> 52 for e in float_keys(np.array([xmin, xmax])))
+    se = np.right_shift(sk, np.uint64(52)).view(np.int64)
+    share = np.bincount(se, weights=sw, minlength=emax + 1)[emin:emax + 1]
+    tot = float(share.sum())
+    ncell = np.ones(emax + 1 - emin, np.int64)
+    if tot > 0.0:
+        ncell += (share * ((1 << m_bits) / tot)).astype(np.int64)
+    np.minimum(ncell, 1 << 16, out=ncell)  # a binade resolves at most 16 mantissa bits here
+    base = np.cumsum(ncell) - ncell
+    size = int(base[-1] + ncell[-1])
+    k = float_keys(x, out=_scratch("cells", n, np.uint64))
+    e = np.right_shift(k, np.uint64(52), out=_scratch("binade", n, np.uint64)).view(np.int64)
+    e -= emin
+    g = _scratch("gather", n, np.int64)
+    np.right_shift(k, np.uint64(36), out=k)
+    np.bitwise_and(k, np.uint64(0xFFFF), out=k)
+    cells = k.view(np.int64)
+    cells *= np.take(ncell, e, out=g, mode="clip")
+    np.right_shift(cells, 16, out=cells)
+    cells += np.take(base, e, out=g, mode="clip")
+    heavy_cell = -1
+    if heavy is not None:
+        hv = float(key_values(heavy))
+        flag = _scratch("flags", n, bool)
+        # the heavy value's cell c becomes 3c + 1; rows below it in c go to 3c, above to 3c + 2
+        np.multiply(cells, 3, out=cells)
+        np.add(cells, np.greater_equal(x, hv, out=flag), out=cells, casting="unsafe")
+        np.add(cells, np.greater(x, hv, out=flag), out=cells, casting="unsafe")
+        he = (int(heavy) >> 52) - emin
+        hcell = int(base[he] + ((((int(heavy) >> 36) & 0xFFFF) * int(ncell[he])) >> 16))
+        heavy_cell = 3 * hcell + 1
+        size *= 3
+    return cells, size, heavy_cell
+
+
+def _locate(dv, cend, h, lo, cnt):
+    """Cell holding each target rank ``dv``: the first cell with ``cend > dv`` and
+    positive weight, searched within each target's own range ``[lo, lo + cnt)``."""
+    pos = np.searchsorted(cend, dv, side="right")
+    np.clip(pos, lo, lo + cnt - 1, out=pos)
+    bad = h[pos] <= 0.0
+    if bad.any():  # float noise at a range's end: step to the nearest weighted cell in range
+        idx = np.arange(h.shape[0])
+        prev = np.maximum.accumulate(np.where(h > 0.0, idx, -1))
+        nxt = np.minimum.accumulate(np.where(h > 0.0, idx, h.shape[0])[::-1])[::-1]
+        pb, lb = pos[bad], lo[bad]
+        cand = prev[pb]
+        use_next = cand < lb
+        cand[use_next] = nxt[pb[use_next]]
+        pos[bad] = cand
+    return pos
+
+
+def _sorted_unique(a: np.ndarray) -> np.ndarray:
+    """Distinct values of an integer array (np.unique hashes, which is slow on small arrays here)."""
+    if a.shape[0] > 1 and not bool(np.all(a[1:] >= a[:-1])):
+        a = np.sort(a)
+    if a.shape[0] < 2:
+        return a
+    m = np.empty(a.shape[0], dtype=bool)
+    m[0] = True
+    np.not_equal(a[1:], a[:-1], out=m[1:])
+    return a[m]
+
+
+def _exclusive_cumsum(a):
+    out = np.empty(a.shape[0], _F8)
+    if a.shape[0]:
+        out[0] = 0.0
+        np.cumsum(a[:-1], out=out[1:])
+    return out
+
+
+def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
+    """Entries of ``exact(x, w).prune(capacity)``, found without sorting every row.
+
+    Returns ``None`` when the caller should build the exact summary and prune
+    it (at most ``capacity + 1`` rows, one value, or zero total weight);
+    ``("exact", values, weights)`` when the data turns out to hold at most
+    ``capacity + 1`` distinct values; else ``("pruned", values, rmin, weight,
+    total)``: the minimum, the maximum and, for each target rank
+    ``d = i * W / capacity`` (``0 < i < capacity``), the value whose rank
+    interval ``[weight below, weight at or below)`` holds ``d``, each with its
+    exact rank sums, so the certified epsilon is at most ``1 / capacity``.
+
+    Method: rows go to first-level cells by a monotone map of their value
+    (:func:`_first_level`); one weighted histogram gives every cell's rank
+    range.  Only cells holding a target rank are refined: their rows get a
+    finer key-linear histogram per cell, repeatedly, until each target's cell
+    holds a single value or few enough rows remain to sort them.  Most rows
+    see three vectorised passes (map, histogram, membership) and no sort.
+    """
+    n = x.shape[0]
+    b = int(capacity)
+    imin, imax = int(np.argmin(x)), int(np.argmax(x))
+    if n <= b + 1 or not x[imin] < x[imax]:
+        return None
+    total = float(n) if w is None else float(np.sum(w))
+    if not total > 0.0:
+        return None
+    kmin, kmax = float_keys(np.array([x[imin], x[imax]]))
+    d = np.arange(1, b, dtype=_F8) * (total / b)
+    cells, m, heavy = _first_level(x, w, n, float(x[imin]), float(x[imax]))
+    hw = np.bincount(cells, weights=w, minlength=m)
     if w is None:
-        xs = np.sort(x)
-        starts = np.flatnonzero(np.concatenate(([True], xs[1:] != xs[:-1])))
-        counts = np.diff(np.append(starts, n)).astype(_F8)
-        return xs[starts], counts
-    order = np.argsort(x)
-    xs = x[order]
-    ws = w[order]
-    starts = np.flatnonzero(np.concatenate(([True], xs[1:] != xs[:-1])))
-    return xs[starts], np.add.reduceat(ws, starts)
+        hw = hw.astype(_F8)
+    exact_mode = np.count_nonzero(hw) <= b + 1
+    cnt = hw
+    if exact_mode and w is not None:
+        cnt = np.bincount(cells, minlength=m)
+        exact_mode = np.count_nonzero(cnt) <= b + 1
+    ex = _exclusive_cumsum(hw)
+    t_idx = np.arange(d.shape[0])
+    pos = _locate(d, ex + hw, hw, np.zeros(d.shape[0], np.int64), np.full(d.shape[0], m, np.int64))
+    res_k = np.zeros(d.shape[0], np.uint64)
+    res_lo = np.zeros(d.shape[0], _F8)
+    res_w = np.zeros(d.shape[0], _F8)
+    fin_k, fin_w = [], []
+    n_fin = 0
+    wmin = wmax = None
+    if heavy >= 0:  # the point mass's cell holds one value: no refining
+        hk = float_keys(x[[int(np.argmax(cells == heavy))]])[0]
+        at = pos == heavy
+        res_k[at], res_lo[at], res_w[at] = hk, ex[heavy], hw[heavy]
+        t_idx, pos = t_idx[~at], pos[~at]
+        if exact_mode:
+            fin_k.append(np.array([hk]))
+            fin_w.append(hw[heavy:heavy + 1])
+            n_fin = 1
+        if cells[imin] == heavy:
+            wmin = float(hw[heavy])
+        if cells[imax] == heavy:
+            wmax = float(hw[heavy])
+    if exact_mode:
+        par = np.flatnonzero(cnt > 0)
+        if heavy >= 0:
+            par = par[par != heavy]
+    else:  # the cells of the minimum and maximum join once, to weigh those two values
+        ends = [c for c in (int(cells[imin]), int(cells[imax])) if c != heavy]
+        par = _sorted_unique(np.concatenate((pos, np.array(ends, np.int64))))
+    pidx = np.full(m, -1, np.int64)
+    pidx[par] = np.arange(par.shape[0])
+    is_par = pidx >= 0
+    if exact_mode and heavy < 0:
+        rows = np.arange(n)
+    else:
+        rows = np.flatnonzero(np.take(is_par, cells, out=_scratch("flags", n, bool), mode="clip"))
+    rp = pidx[cells[rows]]
+    t_par = pidx[pos]
+    par_c, par_h = ex[par], hw[par]
+    has_t = np.zeros(par.shape[0], bool)
+    has_t[t_par] = True
+    first = True
+    while True:
+        kr = float_keys(x[rows])
+        wr = None if w is None else w[rows]
+        if first:
+            first = False
+            if wmin is None:
+                at = kr == kmin
+                wmin = float(np.count_nonzero(at) if w is None else wr[at].sum())
+            if wmax is None:
+                at = kr == kmax
+                wmax = float(np.count_nonzero(at) if w is None else wr[at].sum())
+        npar = par_c.shape[0]
+        if rows.shape[0] <= _FINISH_ROWS:
+            # few rows left: sort them (parents are disjoint key ranges, in key order)
+            o = np.argsort(kr)
+            ks = kr[o]
+            starts = _run_starts(ks)
+            if starts is None:
+                starts = np.arange(ks.shape[0])
+            dk = ks[starts]
+            dw = _run_lengths(starts, ks.shape[0]) if wr is None else np.add.reduceat(wr[o], starts)
+            dpar = rp[o][starts]
+            dex = _exclusive_cumsum(dw)
+            first_d = np.searchsorted(dpar, np.arange(npar))
+            nd = np.bincount(dpar, minlength=npar)
+            dc = par_c[dpar] + (dex - dex[first_d][dpar])
+            if t_idx.shape[0]:
+                p = _locate(d[t_idx], dc + dw, dw, first_d[t_par], nd[t_par])
+                res_k[t_idx], res_lo[t_idx], res_w[t_idx] = dk[p], dc[p], dw[p]
+            if exact_mode:
+                fin_k.append(dk)
+                fin_w.append(dw)
+                n_fin += dk.shape[0]
+                exact_mode = n_fin <= b + 1
+            break
+        pmn = np.full(npar, _U64_MAX, np.uint64)
+        pmx = np.zeros(npar, np.uint64)
+        np.minimum.at(pmn, rp, kr)
+        np.maximum.at(pmx, rp, kr)
+        single = pmn == pmx
+        if single.any():
+            ts = single[t_par]
+            if ts.any():
+                tt, tp = t_idx[ts], t_par[ts]
+                res_k[tt], res_lo[tt], res_w[tt] = pmn[tp], par_c[tp], par_h[tp]
+                t_idx, t_par = t_idx[~ts], t_par[~ts]
+            if exact_mode:
+                fin_k.append(pmn[single])
+                fin_w.append(par_h[single])
+                n_fin += int(np.count_nonzero(single))
+        keep = ~single if exact_mode else (~single & has_t)
+        if not keep.any():
+            break
+        if not keep.all():
+            newi = np.cumsum(keep) - 1
+            sel = keep[rp]
+            rows, rp, kr = rows[sel], newi[rp[sel]], kr[sel]
+            wr = None if wr is None else wr[sel]
+            t_par = newi[t_par]
+            pmn, pmx, par_c, par_h = pmn[keep], pmx[keep], par_c[keep], par_h[keep]
+            npar = par_c.shape[0]
+        # split each parent's key range into about one sub-cell per row
+        nsub = np.clip(np.bincount(rp, minlength=npar) * _SPLIT, 2, 1 << 16)
+        scale = nsub / ((pmx - pmn).astype(_F8) + 1.0)
+        loc = (kr - pmn[rp]).astype(_F8)
+        loc *= scale[rp]
+        loc = loc.astype(np.int64)
+        np.minimum(loc, nsub[rp] - 1, out=loc)
+        base = np.cumsum(nsub) - nsub
+        sub = loc + base[rp]
+        tot = int(base[-1] + nsub[-1])
+        hs = np.bincount(sub, weights=wr, minlength=tot)
+        if wr is None:
+            hs = hs.astype(_F8)
+            cs = hs
+        else:
+            cs = np.bincount(sub, minlength=tot) if exact_mode else hs
+        subpar = np.repeat(np.arange(npar), nsub)
+        sex = _exclusive_cumsum(hs)
+        sc = par_c[subpar] + (sex - sex[base][subpar])
+        nonempty = cs > 0
+        if exact_mode and n_fin + np.count_nonzero(nonempty) > b + 1:
+            exact_mode = False
+            fin_k, fin_w = [], []
+        if t_idx.shape[0]:
+            p = _locate(d[t_idx], sc + hs, hs, base[t_par], nsub[t_par])
+        else:
+            p = np.empty(0, np.int64)
+        newpar = np.flatnonzero(nonempty) if exact_mode else _sorted_unique(p)
+        if newpar.shape[0] == 0:
+            break
+        sidx = np.full(tot, -1, np.int64)
+        sidx[newpar] = np.arange(newpar.shape[0])
+        t_par = sidx[p]
+        ps = sidx[sub]
+        sel = ps >= 0
+        rows, rp = rows[sel], ps[sel]
+        par_c, par_h = sc[newpar], hs[newpar]
+        has_t = np.zeros(newpar.shape[0], bool)
+        has_t[t_par] = True
+    if exact_mode:
+        fk, fw = np.concatenate(fin_k), np.concatenate(fin_w)
+        o = np.argsort(fk)
+        return "exact", key_values(fk[o]), fw[o]
+    keys = np.concatenate(([kmin], res_k, [kmax]))
+    lo = np.concatenate(([0.0], res_lo, [total - wmax]))
+    ww = np.concatenate(([wmin], res_w, [wmax]))
+    if not bool(np.all(keys[1:] >= keys[:-1])):  # float noise reordered two targets
+        o = np.argsort(keys, kind="stable")
+        keys, lo, ww = keys[o], lo[o], ww[o]
+    first_i = np.flatnonzero(np.concatenate(([True], keys[1:] != keys[:-1])))
+    return "pruned", key_values(keys[first_i]), lo[first_i], ww[first_i], total
 
 
 def _extended(x, rmin, rmax, w, total, z):
@@ -183,8 +737,8 @@ class Summary:
 
     # ------------------------------------------------------------------ build
     @classmethod
-    def from_values(cls, values, weights=None) -> "Summary":
-        """Exact summary (``epsilon == 0``) of a 1-D array.
+    def from_values(cls, values, weights=None, *, capacity: int | None = None) -> "Summary":
+        """Summary of a 1-D array: exact, or directly pruned to ``capacity``.
 
         Parameters
         ----------
@@ -193,53 +747,102 @@ class Summary:
         weights : array_like, optional
             Row weights, finite and >= 0 (default 1 per row).  Zero-weight rows
             are kept as points but carry no rank mass.
+        capacity : int, optional
+            ``None`` (default): the exact summary, ``epsilon == 0``.  An integer
+            ``b >= 1``: a summary of at most ``b + 1`` entries with a-priori
+            ``bound == 1 / b`` and certified ``epsilon <= bound``, equal (up to
+            the summation order of float weights) to
+            ``from_values(values, weights).prune(b)`` but built without sorting
+            every row.  Data with at most ``b + 1`` distinct values stays exact.
 
         Raises
         ------
         InputError
-            For a non-1-D or non-numeric array, an integer beyond +-2**53, or a
-            NaN, infinite or negative weight (the message names its position).
+            For a non-1-D or non-numeric array, an integer beyond +-2**53, a
+            NaN, infinite or negative weight (the message names its position),
+            or a capacity that is not a positive integer.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> from sketchmerge import Summary
+        >>> x = np.arange(100_000.0)
+        >>> s = Summary.from_values(x, capacity=100)
+        >>> len(s), s.bound, s.epsilon <= s.bound
+        (101, 0.01, True)
         """
         raw = np.asarray(values)
         dtype = raw.dtype.name
         x = check_values(raw)
         w = None if weights is None else check_weights(weights, x.shape[0])
-        return cls._from_checked(x, w, dtype)
+        if capacity is not None:
+            capacity = _check_capacity(capacity)
+        return cls._from_checked(x, w, dtype, capacity)
 
     @classmethod
-    def _from_checked(cls, x, w, dtype="float64") -> "Summary":
-        nan = np.isnan(x)
-        missing_count = int(np.count_nonzero(nan))
-        if missing_count:
+    def _from_checked(cls, x, w, dtype="float64", capacity=None, method="auto") -> "Summary":
+        nan = np.isnan(x, out=_scratch("nan", x.shape[0], bool))
+        if nan.any():
+            missing_count = int(np.count_nonzero(nan))
             missing_weight = float(missing_count if w is None else w[nan].sum())
             keep = ~nan
             x = x[keep]
             w = None if w is None else w[keep]
         else:
-            missing_weight = 0.0
-        count = x.shape[0]
-        x = x + 0.0  # -0.0 + 0.0 == +0.0: one value for both zeros
-        xu, wu = exact_entries(x, w)
-        return cls._exact_from_entries(xu, wu, count=count, missing_count=missing_count,
-                                       missing_weight=missing_weight, dtype=dtype)
+            missing_count, missing_weight = 0, 0.0
+        # -0.0 and +0.0 compare equal, sort together and get one key: they are one value
+        common = dict(count=x.shape[0], missing_count=missing_count,
+                      missing_weight=missing_weight, dtype=dtype)
+        if capacity is not None and x.shape[0] > capacity + 1:
+            got = pruned_entries(x, w, capacity)
+            if got is None:
+                return cls._exact_from_entries(*_exact_entries(x, w, method), **common).prune(capacity)
+            if got[0] == "exact":
+                return cls._exact_from_entries(got[1], got[2], **common)
+            _, xe, lo, we, total = got
+            return cls._own(xe, lo, lo + we, we, total_weight=total, bound=1.0 / capacity,
+                            exact=False, **common)
+        return cls._exact_from_entries(*_exact_entries(x, w, method), **common)
 
     @classmethod
     def _exact_from_entries(cls, xu, wu, *, count, missing_count=0, missing_weight=0.0,
                             dtype="float64") -> "Summary":
-        """Exact summary from distinct sorted values and their weight sums.
+        """Exact summary from distinct sorted values and their weight sums
+        (``wu=None``: one unit of weight each).
 
         Ranks are computed canonically (a cumulative sum), so an exact summary
         is fully determined by ``(x, w)``: the blob format stores only those.
+        ``rmin`` and ``rmax`` are two views of one array of ``len + 1`` sums.
         """
-        rmax = np.cumsum(wu)
-        rmin = np.empty_like(rmax)
-        if rmax.size:
-            rmin[0] = 0.0
-            rmin[1:] = rmax[:-1]
-        total = float(rmax[-1]) if rmax.size else 0.0
-        return cls(xu, rmin, rmax, wu, total_weight=total, count=count,
-                   missing_count=missing_count, missing_weight=missing_weight,
-                   bound=0.0, exact=True, dtype=dtype)
+        k = xu.shape[0]
+        c = np.empty(k + 1, _F8)
+        c[0] = 0.0
+        if wu is None:
+            c[1:] = np.arange(1, k + 1, dtype=_F8)
+            wu = np.broadcast_to(np.float64(1.0), (k,))
+        else:
+            np.cumsum(wu, out=c[1:])
+        return cls._own(xu, c[:-1], c[1:], wu, total_weight=float(c[-1]), count=count,
+                        missing_count=missing_count, missing_weight=missing_weight,
+                        bound=0.0, exact=True, dtype=dtype)
+
+    @classmethod
+    def _own(cls, x, rmin, rmax, w, **kw) -> "Summary":
+        """Build from float64 arrays nobody else holds (no copies; they become read-only)."""
+        s = cls.__new__(cls)
+        for name, a in (("_x", x), ("_rmin", rmin), ("_rmax", rmax), ("_w", w)):
+            a = np.asarray(a, dtype=_F8)
+            if a.flags.writeable:
+                a.flags.writeable = False
+            object.__setattr__(s, name, a)
+        s._total = float(kw["total_weight"])
+        s._count = int(kw["count"])
+        s._missing_count = int(kw.get("missing_count", 0))
+        s._missing_weight = float(kw.get("missing_weight", 0.0))
+        s._bound = float(kw.get("bound", 0.0))
+        s._exact = bool(kw.get("exact", False))
+        s._dtype = str(kw.get("dtype", "float64"))
+        return s
 
     @classmethod
     def empty(cls, dtype="float64") -> "Summary":
@@ -399,16 +1002,15 @@ class Summary:
         when the summary already has at most ``capacity + 1`` entries, so data
         with few distinct values stays exact.
         """
-        capacity = int(capacity)
-        if capacity < 1:
-            raise ValueError(f"capacity must be >= 1, got {capacity}")
+        capacity = _check_capacity(capacity)
         k = self._x.size
         if k <= capacity + 1:
             return self
-        d = np.arange(capacity + 1, dtype=_F8) * (self._total / capacity)
-        idx = self._query_index(d)
+        # targets 0 and W are the first and last entries, kept anyway: querying
+        # them too could add an entry (a zero-weight minimum answers nothing)
+        d = np.arange(1, capacity, dtype=_F8) * (self._total / capacity)
         keep = np.zeros(k, dtype=bool)
-        keep[idx] = True
+        keep[self._query_index(d)] = True
         keep[0] = keep[-1] = True
         return Summary(self._x[keep], self._rmin[keep], self._rmax[keep], self._w[keep],
                        total_weight=self._total, count=self._count,
@@ -480,6 +1082,12 @@ class Summary:
         from .blob import decode_summary
 
         return decode_summary(blob)
+
+
+def _check_capacity(capacity) -> int:
+    if isinstance(capacity, (bool, np.bool_)) or not isinstance(capacity, (int, np.integer)) or capacity < 1:
+        raise InputError(f"capacity: expected an integer >= 1, got {capacity!r}")
+    return int(capacity)
 
 
 def _common_dtype(names):
