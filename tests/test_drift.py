@@ -116,8 +116,7 @@ def test_psi_interval_contains_every_point_of_the_box():
         assert lo - 1e-12 <= v <= hi + 1e-12
     # and the bounds are attained at corners / nearest ends (tight per term)
     corner = max(ref_psi([x], [y]) for x in (a_lo[0], a_hi[0]) for y in (e_lo[0], e_hi[0]))
-    lo0, hi0 = psi_interval(a_lo[:1], a_hi[:1], e_lo[:1], e_hi[:1])
-    assert hi0 == pytest.approx(corner)
+    assert psi_interval(a_lo[:1], a_hi[:1], e_lo[:1], e_hi[:1])[1] == pytest.approx(corner)
 
 
 # --------------------------------------------------------------------------- shares
@@ -198,7 +197,8 @@ def test_shifted_pruned_psi_within_certified_interval():
     assert d["psi_low"] <= ref <= d["psi_high"]
     # the interval is worst case; the interpolated estimate is far closer (measured ~0.1%)
     assert d["psi"] == pytest.approx(ref, rel=0.02)
-    assert d["level"] == "large" if ref >= 0.25 else d["level"] == "moderate"
+    # reading thresholds 0.1 / 0.25 (common practice)
+    assert d["level"] == ("large" if ref > 0.25 else "moderate" if ref >= 0.1 else "little")
 
 
 def test_merged_pruned_summaries_within_certified_interval():
@@ -281,7 +281,6 @@ def test_edge_shift_of_a_mean_shift_against_numpy():
         ref2 = np.max(np.abs(old_q - t))
         assert abs(d["edge_shift"]) == pytest.approx(ref2, abs=d["edge_shift_error"] + 2.0 / n)
         assert d["edge_shift"] > 0  # the distribution moved up: new edges rank higher in the old data
-        assert abs(d["edge_shift"]) <= d["edge_shift"] + d["edge_shift_error"]
 
 
 def test_edge_shift_downward_weighted_is_negative():
