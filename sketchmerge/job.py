@@ -342,7 +342,7 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
         (per feature ``name``, ``edges_count``, ``rank_error``, ``missing_weight``
         and more), ``skipped``, ``seconds``.
     """
-    from .sources import open_dataset, redact, select_features
+    from .sources import _secret_values, open_dataset, redact, select_features
     from .store import TableStore
 
     t0 = time.perf_counter()
@@ -352,8 +352,11 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
                               fan_in=fan_in))
     so = dict(storage_options or {})
     tso = dict(table_storage_options if table_storage_options is not None else so)
-    ds = open_dataset(source, fmt=format, storage_options=so or None,
-                      byte_budget=int(config.get("byte_budget", byte_budget)))
+    # listing and footer reads run on the driver: a transient failure there is retried
+    # like one inside a task, instead of failing the whole build
+    ds = with_retries(lambda: open_dataset(source, fmt=format, storage_options=so or None,
+                                           byte_budget=int(config.get("byte_budget", byte_budget))),
+                      f"listing {redact(str(source), _secret_values(so))}")
     for role, col in (("weight", weight_column), ("prediction", prediction_column),
                       ("label", label_column)):
         if col and col not in ds.columns:
@@ -469,8 +472,8 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
 
             new = decode_table(store.read_version(version)[1])
             report["drift"] = drift_between(previous, new)
-        except ImportError:
-            pass
+        except Exception as e:  # drift is a report: never fail a published build on it
+            log.warning("drift against version %s could not be computed: %s", current, e)
     if changed:
         try:
             report["gc"] = store.gc(keep=int(config.get("keep", keep)),
