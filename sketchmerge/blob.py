@@ -2,15 +2,32 @@
 
 The format is specified in ``docs/FORMAT.md`` (sections "Envelope", "Summary
 payload" and "Summary set"); keep this module and that document in step and
-add a golden file under ``tests/data/`` for every format version.
+add golden files under ``tests/data/`` for every format version.
 
 Bytes are untrusted when decoded: every msgpack call passes explicit options
 (binary type on, raw strings off, strict map keys, bounded sizes), nothing is
-ever unpickled or evaluated, and anything wrong raises :class:`FormatError`.
+ever unpickled or evaluated, and anything wrong raises :class:`FormatError`
+saying what was expected and what was found.
+
+Payload layouts (docs/FORMAT.md, "Summary payload"):
+
+``xw``       exact summaries: values and weights; ranks are their cumulative sum.
+``ranked``   non-exact summaries whose every entry has exact ranks
+             (``rmax == rmin + w``, what a direct or first prune produces):
+             values, ``rmin`` and ``w``; ``rmax`` is derived.  Used only when
+             the rank fields are stored losslessly.
+``bounds``   any summary: values, ``rmin``, ``rmax`` and ``w``.
+
+Arrays are little-endian ``<f8``, or ``<f4`` when that is lossless.  The rank
+fields of a ``bounds`` payload may also be rounded to ``<f4`` in the safe
+direction (``rmin`` and ``w`` down, ``rmax`` up); then the stored a-priori
+bound grows by :data:`F4_ROUNDING_SLACK`, so a decoded summary's certified
+epsilon still stays within its bound.
 """
 
 from __future__ import annotations
 
+import re
 import zlib
 
 import msgpack
@@ -20,6 +37,7 @@ from .errors import FormatError
 from .summary import Summary
 
 __all__ = [
+    "F4_ROUNDING_SLACK",
     "FORMAT_VERSION",
     "KIND_SUMMARY",
     "KIND_SUMMARY_SET",
@@ -37,12 +55,28 @@ FORMAT_VERSION = 1
 KIND_SUMMARY = "sketchmerge.summary"
 KIND_SUMMARY_SET = "sketchmerge.summary-set"
 
-#: added to the a-priori bound when rank fields are rounded to float32 (4 ulp of W)
+#: Added to the a-priori bound when a ``bounds`` payload's rank fields are
+#: rounded to float32.  Each rounded field moves by less than one float32 ulp,
+#: i.e. by less than ``2**-23 * W`` (every rank field lies in ``[0, W]``), and
+#: the certified epsilon combines at most four fields, so it moves by less
+#: than ``4 * 2**-23 = 2**-21`` (about 4.8e-7) in normalised rank.
 F4_ROUNDING_SLACK = 2.0**-21
 
 _F4_MAX = float(np.finfo(np.float32).max)
-_MAX_BLOB = 1 << 31  # 2 GiB: larger inputs are rejected before unpacking
+_F4_MIN_TOTAL = 2.0**-100   # below float32's normal range ulps stop being relative
+_MAX_BLOB = 1 << 31         # 2 GiB: larger inputs are rejected before unpacking
+_MAX_ENTRIES = 1 << 27      # per summary; also bounded by the blob's own length
 _DTYPES = {"<f8": np.dtype("<f8"), "<f4": np.dtype("<f4")}
+_DTYPE_NAME = re.compile(r"(float(16|32|64)|u?int(8|16|32|64)|bool)\Z")
+#: the decoder's tolerance (in normalised rank) for float rounding when it
+#: checks a summary's ranks against its total weight and its bound
+_TOLERANCE = 1e-9
+
+
+def _short(v, limit: int = 60) -> str:
+    """repr of an untrusted value, cut to ``limit`` characters for messages."""
+    r = repr(v)
+    return r if len(r) <= limit else r[: limit - 3] + "..."
 
 
 def _pack(obj) -> bytes:
@@ -50,7 +84,7 @@ def _pack(obj) -> bytes:
 
 
 def _unpack(data: bytes, what: str, *, max_array: int = 1 << 20, max_map: int = 1 << 12):
-    """Unpack untrusted msgpack with explicit safety limits."""
+    """Unpack untrusted msgpack with explicit safety limits (each also capped by the data's length)."""
     try:
         return msgpack.unpackb(
             data,
@@ -64,11 +98,12 @@ def _unpack(data: bytes, what: str, *, max_array: int = 1 << 20, max_map: int = 
             max_ext_len=0,
         )
     except Exception as e:  # msgpack raises several types; all mean malformed bytes
-        raise FormatError(f"{what}: expected a msgpack document, got malformed bytes ({type(e).__name__}: {e})") from e
+        raise FormatError(f"{what}: expected a msgpack document, got malformed bytes "
+                          f"({type(e).__name__}: {_short(str(e), 120)})") from e
 
 
 def encode_envelope(kind: str, payload: bytes) -> bytes:
-    """Wrap a payload: kind, format version, payload bytes and their CRC-32."""
+    """Wrap a payload: kind, format version, payload bytes and their CRC-32 (zlib's)."""
     return _pack({"kind": kind, "format": FORMAT_VERSION, "payload": payload,
                   "crc32": zlib.crc32(payload) & 0xFFFFFFFF})
 
@@ -85,25 +120,27 @@ def decode_envelope(blob, kind: str, what: str = "blob") -> bytes:
         raise FormatError(f"{what}: expected a msgpack map envelope, got {type(env).__name__}")
     got_kind = env.get("kind")
     if got_kind != kind:
-        raise FormatError(f"{what}: expected kind {kind!r}, got {got_kind!r}")
+        raise FormatError(f"{what}: expected kind {kind!r}, got {_short(got_kind)}")
     version = env.get("format")
     if type(version) is not int:
-        raise FormatError(f"{what}: expected an integer format version, got {version!r}")
+        raise FormatError(f"{what}: expected an integer format version, got {_short(version)}")
     if version != FORMAT_VERSION:
+        hint = "newer" if version > FORMAT_VERSION else "older"
         raise FormatError(f"{what}: expected format version {FORMAT_VERSION}, got {version} "
-                          "(written by a newer or older sketchmerge?)")
+                          f"(written by a {hint} sketchmerge?)")
     payload = env.get("payload")
     crc = env.get("crc32")
     if not isinstance(payload, bytes):
         raise FormatError(f"{what}: expected binary payload, got {type(payload).__name__}")
     if type(crc) is not int:
-        raise FormatError(f"{what}: expected an integer crc32, got {crc!r}")
+        raise FormatError(f"{what}: expected an integer crc32, got {_short(crc)}")
+    extra = set(env) - {"kind", "format", "payload", "crc32"}
+    if extra:
+        raise FormatError(f"{what}: expected envelope keys kind, format, payload, crc32, "
+                          f"got also {_short(sorted(map(str, extra)))}")
     actual = zlib.crc32(payload) & 0xFFFFFFFF
     if actual != crc:
         raise FormatError(f"{what}: checksum mismatch: expected crc32 {crc:#010x}, got {actual:#010x}")
-    extra = set(env) - {"kind", "format", "payload", "crc32"}
-    if extra:
-        raise FormatError(f"{what}: unexpected envelope keys {sorted(extra)}")
     return payload
 
 
@@ -133,7 +170,12 @@ def _arr(a: np.ndarray, f4: bool):
 
 
 def summary_to_payload(s: Summary) -> dict:
-    """The payload map of one summary (msgpack-ready; see docs/FORMAT.md)."""
+    """The payload map of one summary (msgpack-ready; see docs/FORMAT.md).
+
+    Picks the smallest layout that keeps the summary's guarantee: lossless
+    arrays where possible, float32 rank bounds rounded outward (with the
+    bound widened by :data:`F4_ROUNDING_SLACK`) only for the ``bounds`` layout.
+    """
     x = s.values
     xt, xb = _arr(x, _lossless_f4(x))
     out = {
@@ -154,7 +196,12 @@ def summary_to_payload(s: Summary) -> dict:
         return out
     lo, hi, w = s.rmin, s.rmax, s.weights
     bound = s.bound
-    if hi.size and float(hi.max()) < _F4_MAX * 0.5:
+    if np.array_equal(lo + w, hi) and _lossless_f4(lo) and _lossless_f4(w):
+        # every entry has exact ranks and they fit float32 exactly (e.g. counts < 2**24)
+        out.update(layout="ranked", bound=bound, rank_type="<f4",
+                   rmin=lo.astype("<f4").tobytes(), w=w.astype("<f4").tobytes())
+        return out
+    if hi.size and float(hi.max()) < _F4_MAX * 0.5 and s.total_weight >= _F4_MIN_TOTAL:
         lo4, hi4, w4 = _round_f4(lo, "down"), _round_f4(hi, "up"), _round_f4(w, "down")
         changed = not (np.array_equal(lo4, lo) and np.array_equal(hi4, hi) and np.array_equal(w4, w))
         if changed:
@@ -172,6 +219,7 @@ _COMMON = {"dtype": str, "count": int, "missing_count": int, "total_weight": flo
            "missing_weight": float, "exact": bool, "n": int, "x_type": str, "x": bytes,
            "layout": str, "bound": float}
 _LAYOUT = {"xw": {"w_type": str, "w": bytes},
+           "ranked": {"rank_type": str, "rmin": bytes, "w": bytes},
            "bounds": {"rank_type": str, "rmin": bytes, "rmax": bytes, "w": bytes}}
 
 
@@ -189,12 +237,16 @@ def _field(p: dict, key: str, typ, what: str):
 def _array(p: dict, key: str, tkey: str, n: int, what: str) -> np.ndarray:
     t = p[tkey]
     if t not in _DTYPES:
-        raise FormatError(f"{what}: expected {tkey} '<f8' or '<f4', got {t!r}")
+        raise FormatError(f"{what}: expected {tkey} '<f8' or '<f4', got {_short(t)}")
     dt = _DTYPES[t]
     b = p[key]
     if len(b) != n * dt.itemsize:
         raise FormatError(f"{what}: expected {n * dt.itemsize} bytes for {key!r} ({n} x {t}), got {len(b)}")
     return np.frombuffer(b, dtype=dt).astype(np.float64)
+
+
+def _finite_nonneg(a: np.ndarray) -> bool:
+    return bool(np.all(np.isfinite(a)) and np.all(a >= 0.0))
 
 
 def summary_from_payload(p, what: str = "summary") -> Summary:
@@ -204,28 +256,35 @@ def summary_from_payload(p, what: str = "summary") -> Summary:
     v = {k: _field(p, k, t, what) for k, t in _COMMON.items()}
     layout = v["layout"]
     if layout not in _LAYOUT:
-        raise FormatError(f"{what}: expected layout 'xw' or 'bounds', got {layout!r}")
+        raise FormatError(f"{what}: expected layout 'xw', 'ranked' or 'bounds', got {_short(layout)}")
     for k, t in _LAYOUT[layout].items():
         _field(p, k, t, what)
     extra = set(p) - set(_COMMON) - set(_LAYOUT[layout])
     if extra:
-        raise FormatError(f"{what}: unexpected fields {sorted(extra)}")
+        raise FormatError(f"{what}: unexpected fields {_short(sorted(map(str, extra)))}")
+    if not _DTYPE_NAME.match(v["dtype"]):
+        raise FormatError(f"{what}: expected a numeric dtype name such as 'float64', got {_short(v['dtype'])}")
     n = v["n"]
-    if n < 0 or v["count"] < 0 or v["missing_count"] < 0 or n > v["count"]:
-        raise FormatError(f"{what}: expected 0 <= n <= count, got n={n}, count={v['count']}")
+    if not (0 <= n <= min(v["count"], _MAX_ENTRIES)) or v["missing_count"] < 0:
+        raise FormatError(f"{what}: expected 0 <= n <= count and missing_count >= 0, got n={_short(n)}, "
+                          f"count={_short(v['count'])}, missing_count={_short(v['missing_count'])}")
     for k in ("total_weight", "missing_weight", "bound"):
         if not (np.isfinite(v[k]) and v[k] >= 0.0):
             raise FormatError(f"{what}: expected finite {k} >= 0, got {v[k]!r}")
+    if (n == 0) != (v["count"] == 0) or (n == 0 and v["total_weight"] != 0.0):
+        raise FormatError(f"{what}: expected entries exactly when count > 0, got n={n}, "
+                          f"count={v['count']}, total_weight={v['total_weight']!r}")
     x = _array(p, "x", "x_type", n, what)
     if np.isnan(x).any() or (n > 1 and not bool(np.all(x[1:] > x[:-1]))):
         raise FormatError(f"{what}: expected strictly increasing entry values, got unsorted or NaN values")
     common = dict(count=v["count"], missing_count=v["missing_count"],
                   missing_weight=v["missing_weight"], dtype=v["dtype"])
     if layout == "xw":
-        if not v["exact"]:
-            raise FormatError(f"{what}: expected exact=true for layout 'xw', got false")
+        if not v["exact"] or v["bound"] != 0.0:
+            raise FormatError(f"{what}: expected exact=true and bound 0 for layout 'xw', "
+                              f"got exact={v['exact']}, bound={v['bound']!r}")
         w = _array(p, "w", "w_type", n, what)
-        if not (np.all(np.isfinite(w)) and np.all(w >= 0.0)):
+        if not _finite_nonneg(w):
             raise FormatError(f"{what}: expected finite weights >= 0")
         s = Summary._exact_from_entries(x, w, **common)
         if s.total_weight != v["total_weight"]:
@@ -233,16 +292,27 @@ def summary_from_payload(p, what: str = "summary") -> Summary:
                               f"got {v['total_weight']!r}")
         return s
     if v["exact"]:
-        raise FormatError(f"{what}: expected exact=false for layout 'bounds', got true")
+        raise FormatError(f"{what}: expected exact=false for layout {layout!r}, got true")
     lo = _array(p, "rmin", "rank_type", n, what)
-    hi = _array(p, "rmax", "rank_type", n, what)
     w = _array(p, "w", "rank_type", n, what)
+    if layout == "ranked":
+        if p["rank_type"] != "<f4":
+            raise FormatError(f"{what}: expected rank_type '<f4' for layout 'ranked', got {_short(p['rank_type'])}")
+        hi = lo + w
+    else:
+        hi = _array(p, "rmax", "rank_type", n, what)
     total = v["total_weight"]
-    ok = (np.all(np.isfinite(lo)) and np.all(np.isfinite(hi)) and np.all(np.isfinite(w))
-          and np.all(lo >= 0.0) and np.all(w >= 0.0) and np.all(lo <= hi))
-    if not ok:
+    if not (_finite_nonneg(lo) and _finite_nonneg(w) and _finite_nonneg(hi) and bool(np.all(lo <= hi))):
         raise FormatError(f"{what}: expected finite rank bounds with 0 <= rmin <= rmax and w >= 0")
-    return Summary(x, lo, hi, w, total_weight=total, bound=v["bound"], exact=False, **common)
+    # float32 rounding up may lift rmax above W by less than one float32 ulp (2**-23 W)
+    if n and float(hi.max()) > total * (1.0 + 2.0**-20) + _TOLERANCE:
+        raise FormatError(f"{what}: expected rank bounds within the total weight {total!r}, "
+                          f"got rmax up to {float(hi.max())!r}")
+    s = Summary(x, lo, hi, w, total_weight=total, bound=v["bound"], exact=False, **common)
+    if s.epsilon > v["bound"] + _TOLERANCE:
+        raise FormatError(f"{what}: expected a certified epsilon within the stored bound {v['bound']!r}, "
+                          f"got {s.epsilon!r}")
+    return s
 
 
 # --------------------------------------------------------------------------- public codecs
@@ -270,6 +340,9 @@ def encode_summary_set(summaries: dict, meta: dict | None = None) -> bytes:
     for k, v in meta.items():
         if not isinstance(k, str) or not isinstance(v, _META_TYPES):
             raise TypeError(f"summary-set meta must map str to scalars, got {k!r}: {type(v).__name__}")
+    for k, s in summaries.items():
+        if not isinstance(k, str) or not isinstance(s, Summary):
+            raise TypeError(f"summary-set must map str to Summary, got {k!r}: {type(s).__name__}")
     body = {"names": list(summaries), "summaries": [summary_to_payload(s) for s in summaries.values()],
             "meta": meta}
     return encode_envelope(KIND_SUMMARY_SET, _pack(body))
@@ -281,14 +354,15 @@ def decode_summary_set(blob) -> tuple[dict, dict]:
     payload = decode_envelope(blob, KIND_SUMMARY_SET, what)
     body = _unpack(payload, what + " payload", max_map=1 << 12)
     if not isinstance(body, dict) or set(body) != {"names", "summaries", "meta"}:
-        raise FormatError(f"{what}: expected a map with keys names, summaries, meta, got "
-                          f"{sorted(body) if isinstance(body, dict) else type(body).__name__}")
+        got = sorted(map(str, body)) if isinstance(body, dict) else type(body).__name__
+        raise FormatError(f"{what}: expected a map with keys names, summaries, meta, got {_short(got)}")
     names, sums, meta = body["names"], body["summaries"], body["meta"]
     if not isinstance(names, list) or not isinstance(sums, list) or len(names) != len(sums):
         raise FormatError(f"{what}: expected equal-length lists of names and summaries")
     if not all(isinstance(n, str) for n in names) or len(set(names)) != len(names):
         raise FormatError(f"{what}: expected distinct string feature names")
-    if not isinstance(meta, dict) or not all(isinstance(v, _META_TYPES) for v in meta.values()):
-        raise FormatError(f"{what}: expected meta as a flat map of scalars")
-    out = {n: summary_from_payload(p, f"{what} feature {n!r}") for n, p in zip(names, sums)}
+    if not isinstance(meta, dict) or not all(isinstance(k, str) and isinstance(v, _META_TYPES)
+                                             for k, v in meta.items()):
+        raise FormatError(f"{what}: expected meta as a flat map of str to scalars")
+    out = {n: summary_from_payload(p, f"{what} feature {_short(n)}") for n, p in zip(names, sums)}
     return out, meta

@@ -4,9 +4,9 @@ This module is pure: it imports numpy only, does no I/O and knows nothing of
 dask or pyarrow.  Serialization lives in :mod:`sketchmerge.blob` (format in
 ``docs/FORMAT.md``); :meth:`Summary.to_bytes` defers to it.
 
-The summary is the weighted quantile summary of Chen & Guestrin, "XGBoost: A
-Scalable Tree Boosting System", KDD 2016, Appendix A.  It holds entries
-``(x, r-, r+, w)`` with ``x`` strictly increasing, where for every entry
+The summary is the weighted quantile summary of Chen & Guestrin (KDD 2016,
+Appendix A).  It holds entries ``(x, r-, r+, w)`` with ``x`` strictly
+increasing, where for every entry
 
 * ``r-(x)`` is a lower bound on the weight of values strictly below ``x``,
 * ``r+(x)`` is an upper bound on the weight of values at or below ``x``,
@@ -14,14 +14,30 @@ Scalable Tree Boosting System", KDD 2016, Appendix A.  It holds entries
 
 and the first and last entries sit at the exact minimum and maximum.  Bounds
 extend to any point ``y`` between entries ``x_i < y < x_{i+1}`` as
-``r-(y) = r-(x_i) + w(x_i)``, ``r+(y) = r+(x_{i+1}) - w(x_{i+1})`` (Definition
-A.1 / equation 13 of the paper).  Merge adds the extended bounds of its inputs
-over the union of their points; prune keeps the entries answering the rank
-queries ``i * W / b``, which adds ``1/b`` to the error.
+``r-(y) = r-(x_i) + w(x_i)``, ``r+(y) = r+(x_{i+1}) - w(x_{i+1})`` (the
+paper's extension of the rank functions).  Merge adds the extended bounds of
+its inputs over the union of their points and keeps the larger error; prune
+keeps the entries answering the rank queries ``i * W / b``, which adds
+``1/b``.  The certified error of a summary is computed from its entries
+(:attr:`Summary.epsilon`); the a-priori :attr:`Summary.bound` tracks the
+worst case and is never exceeded by it.
 
-Missing values are NaN: they are counted in ``missing_count`` and
-``missing_weight`` and never ranked.  ``-0.0`` and ``+0.0`` are one value.
-``+inf`` and ``-inf`` are ranked as the extreme values they are.
+Input policy
+------------
+* NaN is missing: counted in ``missing_count`` and ``missing_weight``, never ranked.
+* ``-0.0`` and ``+0.0`` are one value (reported as ``+0.0``).
+* ``+inf`` and ``-inf`` are ranked as the extreme values they are (they may be
+  the minimum or maximum entry).
+* float64, float32 (and float16), integer and boolean arrays are accepted and
+  ranked as float64.  Integers beyond ``+-2**53`` raise :class:`InputError`:
+  float64 cannot hold them exactly, so neighbouring integers would merge and
+  their ranks would be wrong; cast to float64 yourself if that is acceptable.
+* Weights must be finite and ``>= 0``; a NaN, infinite or negative weight
+  raises :class:`InputError` naming its position.  Zero-weight rows are kept
+  as points (an exact summary lists their values) but carry no rank mass.
+
+Construction is the hot path of the whole product: see :func:`exact_entries`
+and :func:`pruned_entries`, and benchmarks/README.md for the measurements.
 """
 
 from __future__ import annotations
@@ -436,9 +452,10 @@ def _first_level(x, w, n, xmin, xmax):
 
 
 def _locate(dv, cend, h, lo, cnt):
-    """Cell holding each target rank ``dv``: the first cell with ``cend > dv`` and
-    positive weight, searched within each target's own range ``[lo, lo + cnt)``."""
-    pos = np.searchsorted(cend, dv, side="right")
+    """Cell answering each target rank ``dv``: the first cell with ``cend >= dv``
+    (the exact rule of :meth:`Summary._query_index`) and positive weight,
+    searched within each target's own range ``[lo, lo + cnt)``."""
+    pos = np.searchsorted(cend, dv, side="left")
     np.clip(pos, lo, lo + cnt - 1, out=pos)
     bad = h[pos] <= 0.0
     if bad.any():  # float noise at a range's end: step to the nearest weighted cell in range
@@ -481,9 +498,10 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
     ``("exact", values, weights)`` when the data turns out to hold at most
     ``capacity + 1`` distinct values; else ``("pruned", values, rmin, weight,
     total)``: the minimum, the maximum and, for each target rank
-    ``d = i * W / capacity`` (``0 < i < capacity``), the value whose rank
-    interval ``[weight below, weight at or below)`` holds ``d``, each with its
-    exact rank sums, so the certified epsilon is at most ``1 / capacity``.
+    ``d = i * W / capacity`` (``0 < i < capacity``), the first value whose
+    weight at or below reaches ``d``, each with its exact rank sums; the
+    weight strictly between two neighbours is then below ``W / capacity``, so
+    the certified epsilon is at most ``1 / capacity``.
 
     Method: rows go to first-level cells by a monotone map of their value
     (:func:`_first_level`); one weighted histogram gives every cell's rank
@@ -981,7 +999,8 @@ class Summary:
                 xs, ws = xs[starts], np.add.reduceat(ws, starts)
             return Summary._exact_from_entries(xs, ws, count=count, missing_count=mcount,
                                                missing_weight=mweight, dtype=dtype)
-        z = np.unique(np.concatenate([p._x for p in nonempty]))
+        z = np.sort(np.concatenate([p._x for p in nonempty]))
+        z = z[np.concatenate(([True], z[1:] != z[:-1]))]
         lo = np.zeros(z.shape[0], _F8)
         hi = np.zeros(z.shape[0], _F8)
         wz = np.zeros(z.shape[0], _F8)
@@ -1018,11 +1037,30 @@ class Summary:
                        bound=self._bound + 1.0 / capacity, exact=False, dtype=self._dtype)
 
     def _query_index(self, d: np.ndarray) -> np.ndarray:
-        """Entry index answering each absolute target rank in ``d`` (Appendix A query)."""
+        """Entry index answering each absolute target rank in ``d``.
+
+        Exact summaries invert the weighted empirical CDF: the first value
+        whose weight at or below reaches ``d`` (Hyndman & Fan 1996 definition
+        1, numpy's ``method="inverted_cdf"``), for ``d = 0`` the first value
+        with positive weight.  Other summaries use the query
+        of Chen & Guestrin (2016, Appendix A): between the two entries whose
+        rank midpoints bracket ``d``, the one on ``d``'s side of the midpoint
+        of the gap between them, ties going to the lower entry as in the exact
+        rule.  Either way the answer's rank interval is within ``epsilon / 2``
+        of ``d``.
+        """
         lo, hi, w = self._rmin, self._rmax, self._w
         k = lo.size
+        if self._exact:
+            if self._total <= 0.0:
+                return np.zeros(d.shape[0], dtype=np.int64)
+            idx = np.searchsorted(hi, d, side="left")
+            # rank 0 is answered by the first value carrying weight, as numpy does:
+            # a zero-weight minimum is a point of the data but not of its distribution
+            idx[d <= 0.0] = np.searchsorted(hi, 0.0, side="right")
+            return np.minimum(idx, k - 1)
         mid = (lo + hi) * 0.5
-        i = np.searchsorted(mid, d, side="right") - 1
+        i = np.searchsorted(mid, d, side="left") - 1
         out = np.empty(d.shape[0], dtype=np.int64)
         first = i < 0
         last = i >= k - 1
@@ -1031,7 +1069,7 @@ class Summary:
         out[last] = k - 1
         j = i[inner]
         dj = d[inner]
-        left = 2.0 * dj < (lo[j] + w[j]) + (hi[j + 1] - w[j + 1])
+        left = 2.0 * dj <= (lo[j] + w[j]) + (hi[j + 1] - w[j + 1])
         out[inner] = np.where(left, j, j + 1)
         return out
 
@@ -1044,10 +1082,18 @@ class Summary:
         q = np.asarray(q, dtype=_F8)
         scalar = q.ndim == 0
         qa = np.atleast_1d(q).ravel()
-        if np.any(~((qa >= 0.0) & (qa <= 1.0))):
-            raise ValueError("quantile targets must lie in [0, 1]")
+        bad = ~((qa >= 0.0) & (qa <= 1.0))
+        if bad.any():
+            raise InputError(f"quantiles: expected targets in [0, 1], got {qa[bad][0]!r}")
         if self._x.size == 0:
             out = np.full(qa.shape, np.nan)
+        elif self._exact and self._total > 0.0:
+            # compare in normalised rank, as numpy does, so that boundary cases
+            # (q * W landing exactly on a cumulative weight) round the same way
+            cdf = self._rmax / self._total
+            idx = np.searchsorted(cdf, qa, side="left")
+            idx[qa <= 0.0] = np.searchsorted(cdf, 0.0, side="right")
+            out = self._x[np.minimum(idx, self._x.size - 1)]
         else:
             out = self._x[self._query_index(qa * self._total)]
         out = out.reshape(np.shape(q))
@@ -1062,7 +1108,7 @@ class Summary:
         xa = np.asarray(x, dtype=_F8)
         flat = xa.ravel() + 0.0
         if np.isnan(flat).any():
-            raise ValueError("rank_bounds: points must not be NaN")
+            raise InputError("rank_bounds: expected points that are not NaN, got NaN")
         if self._total <= 0.0:
             z = np.zeros(flat.shape, _F8)
             return z.reshape(xa.shape), z.copy().reshape(xa.shape)
