@@ -259,6 +259,7 @@ class CutTable:
         self.record = dict(record or {})
         self.content = dict(content or {})
         self.content_sha256 = content_sha256
+        self._indexes: dict = {}  # feature name -> binning.EdgeIndex, built on first use
 
     # ------------------------------------------------------------ description
     @property
@@ -279,12 +280,38 @@ class CutTable:
         return dict(self.content.get("options", {}))
 
     def feature(self, name: str) -> FeatureCuts:
+        """Everything the table records about one feature (InputError when absent)."""
         try:
             return self._features[name]
-        except KeyError:
+        except (KeyError, TypeError):
             raise InputError(f"feature {name!r} is not in this cut table "
-                             f"(it has {len(self._order)}: {', '.join(self._order[:20])}"
-                             f"{'...' if len(self._order) > 20 else ''})") from None
+                             f"(it has {len(self._order)}: {_listing(self._order)})") from None
+
+    def check_features(self, features) -> list[str]:
+        """The requested names as a list, or InputError listing every one the table lacks.
+
+        A string is refused (it would be read as a list of one-letter names).
+        """
+        if isinstance(features, (str, bytes)):
+            raise InputError(f"features: expected a list of names, got the string {features!r}")
+        names = list(features)
+        absent = [n for n in names if n not in self._features]
+        if absent:
+            raise InputError(f"{len(absent)} requested feature(s) not in this cut table: "
+                             f"{', '.join(map(repr, absent))} (it has {len(self._order)}: "
+                             f"{_listing(self._order)})")
+        dup = sorted({n for n in names if names.count(n) > 1})
+        if dup:
+            raise InputError(f"features: expected distinct names, got {', '.join(map(repr, dup))} more than once")
+        return names
+
+    def select(self, features) -> "CutTable":
+        """A table of just ``features``, in that order (the stored table is untouched)."""
+        names = self.check_features(features)
+        out = CutTable([self._features[n] for n in names], record=self.record, content=self.content,
+                       content_sha256=self.content_sha256)
+        out._indexes = {n: self._indexes[n] for n in names if n in self._indexes}
+        return out
 
     def edges(self, name: str) -> np.ndarray:
         """The edges of one feature (read-only float64 array)."""
@@ -310,6 +337,28 @@ class CutTable:
         the stored summaries; ``rank_error`` (default ``1/(8*bins)``) is the
         bound the caller needs, and a feature whose summary cannot honour it
         raises InputError naming it.
+
+        A feature with at most ``bins`` distinct values keeps them all as edges
+        (mode ``"distinct"``, rank error 0); a feature without values keeps no
+        edges.  The derived table records ``rebinned`` (bins, rank error, the
+        stored bin counts) in :attr:`record`; nothing is written anywhere.
+
+        Raises
+        ------
+        InputError
+            when ``bins`` is not in 1..65535, or when a stored summary's
+            certified error (half its epsilon) exceeds ``rank_error``; the
+            message lists every such feature and its certified bound.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> from sketchmerge import Summary
+        >>> from sketchmerge.cuts import CutTable, feature_cuts
+        >>> s = Summary.from_values(np.arange(1000.0))
+        >>> t = CutTable([feature_cuts("age", s, 256, 1 / 2048)])
+        >>> t.rebin(4).edges("age").tolist()
+        [249.0, 499.0, 749.0, 999.0]
         """
         need = default_rank_error(bins) if rank_error is None else float(rank_error)
         out, bad = [], []
@@ -322,46 +371,80 @@ class CutTable:
             raise InputError(f"rebin to {bins} bins: the stored summaries cannot honour a rank error of "
                              f"{need:.3g} for {', '.join(bad)}; rebuild the table with --bins {bins}")
         rec = dict(self.record)
-        rec["rebinned_from"] = {n: self._features[n].bins for n in self._order[:1]}
+        rec["rebinned"] = {"bins": int(bins), "rank_error": need,
+                           "from_bins": sorted({self._features[n].bins for n in self._order})}
         return CutTable(out, record=rec, content=self.content, content_sha256=self.content_sha256)
 
     # ------------------------------------------------------------ binning
     def code_dtype(self, features=None) -> np.dtype:
         """uint8 when every code (missing included) fits, else uint16."""
-        names = self._order if features is None else features
-        top = max((self.feature(n).edges.size for n in names), default=0)
+        names = self._order if features is None else self.check_features(features)
+        top = max((self._features[n].edges.size for n in names), default=0)
         return np.dtype(np.uint8) if top <= 255 else np.dtype(np.uint16)
 
-    def bin(self, data, features=None, out=None) -> np.ndarray:
+    def _index(self, name: str):
+        from .binning import EdgeIndex
+
+        ix = self._indexes.get(name)
+        if ix is None:  # a race builds it twice, harmlessly
+            ix = self._indexes[name] = EdgeIndex(self._features[name].edges)
+        return ix
+
+    def bin(self, data, features=None, out=None, threads=None) -> np.ndarray:
         """Bin rows with the table's edges.
 
         Parameters
         ----------
         data : 2-D numpy array, dict of 1-D arrays, pyarrow Table / RecordBatch or pandas DataFrame
-            For a 2-D array, column ``j`` is feature ``features[j]``.
+            For a 2-D array (C- or F-ordered), column ``j`` is feature
+            ``features[j]``; other inputs are looked up by name and may hold
+            more columns.  float64, float32, float16, integer and boolean
+            values are accepted; float64 and float32 are read in place (no
+            converted copy), Arrow nulls and NaN are missing.
         features : list of str, optional
             The features to bin, in the job's order (default: all, table order).
+            Every name the table lacks is listed in the error.
         out : numpy array, optional
-            A C-contiguous ``(rows, len(features))`` uint8/uint16 buffer to fill.
+            A writable ``(rows, len(features))`` uint8/uint16 array (any memory
+            layout, e.g. a view into a larger buffer) to fill instead of
+            allocating.
+        threads : int, optional
+            Worker threads for large inputs (default: the CPUs this process may
+            use; 1 keeps everything on the calling thread).
 
         Returns
         -------
         numpy.ndarray
-            Codes of shape ``(rows, len(features))``: bin index, or ``len(edges)`` for missing.
+            Codes of shape ``(rows, len(features))``: bin ``i`` holds
+            ``edges[i-1] < x <= edges[i]``, values above the last edge go to
+            the last bin, missing values get ``len(edges)``, a feature without
+            edges codes every row 0.  uint8 when every feature has at most 255
+            edges, else uint16 (or ``out``).
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> from sketchmerge import Summary
+        >>> from sketchmerge.cuts import CutTable, feature_cuts
+        >>> s = Summary.from_values(np.array([1.0, 2.0, 3.0]))
+        >>> t = CutTable([feature_cuts("rooms", s, 4, 1 / 32)])
+        >>> t.bin({"rooms": np.array([0.5, 2.0, 2.5, 7.0, np.nan])}).ravel().tolist()
+        [0, 1, 2, 2, 3]
         """
         from .binning import bin_columns
 
-        names = list(self._order if features is None else features)
-        missing = [n for n in names if n not in self._features]
-        if missing:
-            raise InputError(f"features not in this cut table: {', '.join(missing)} "
-                             f"(the table has: {', '.join(self._order)})")
-        return bin_columns(data, names, [self._features[n].edges for n in names],
-                           self.code_dtype(names), out=out)
+        names = list(self._order) if features is None else self.check_features(features)
+        return bin_columns(data, names, [self._index(n) for n in names], self.code_dtype(names),
+                           out=out, threads=threads)
+
+
+def _listing(names, limit: int = 20) -> str:
+    head = ", ".join(names[:limit])
+    return head + (f", ... ({len(names) - limit} more)" if len(names) > limit else "")
 
 
 def load(table: str, version: int | None = None, storage_options: dict | None = None,
-         bins: int | None = None) -> CutTable:
+         bins: int | None = None, cache_dir=None, features=None) -> CutTable:
     """Load the current (or a pinned) version of a cut table.
 
     Parameters
@@ -369,17 +452,46 @@ def load(table: str, version: int | None = None, storage_options: dict | None = 
     table : str
         The table's location: a local path or an fsspec URL.
     version : int, optional
-        Pin a version (default: the current one).
+        Pin a version (default: the current one).  Published versions never
+        change, so a pinned version gives the same edges on every load.
     storage_options : dict, optional
         Passed to fsspec (credentials, endpoint).
     bins : int, optional
         Derive edges for another bin count from the stored summaries (see :meth:`CutTable.rebin`).
+    cache_dir : str or os.PathLike, optional
+        Keep downloaded documents in this local folder, keyed by table,
+        version and sha256, shared safely by every process on the host (see
+        :mod:`sketchmerge.tablecache`).  Default: the ``SKETCHMERGE_CACHE_DIR``
+        environment variable, else no cache; ``""`` turns the cache off.
+    features : list of str, optional
+        Keep only these features, in this order (see :meth:`CutTable.select`).
+
+    Raises
+    ------
+    NoInputError
+        when nothing (or not that version) is published.
+    FormatError
+        when the document is corrupt, does not match its recorded checksum,
+        or differs from the copy cached earlier for the same version.
+
+    Examples
+    --------
+    >>> import sketchmerge                                          # doctest: +SKIP
+    >>> cuts = sketchmerge.load("s3://bucket/tables/loans", version=7,
+    ...                         cache_dir="/var/cache/sketchmerge")  # doctest: +SKIP
     """
     from .store import TableStore
+    from .tablecache import read_document, resolve_cache_dir
 
     store = TableStore(table, storage_options=storage_options)
-    v, data = store.read_version(version)
+    where = resolve_cache_dir(cache_dir)
+    if where is None:
+        v, data = store.read_version(version)
+    else:
+        v, data, _ = read_document(store, version, where)
     cuts = decode_table(data, what=f"cut table {store.url} version {v}")
     if cuts.version != v:
         raise FormatError(f"cut table {store.url}: expected version {v} inside the document, got {cuts.version}")
+    if features is not None:
+        cuts = cuts.select(features)
     return cuts if bins is None else cuts.rebin(bins)
