@@ -264,30 +264,38 @@ class _Cluster:
             self.own.close()
 
 
-def _progress(futures, total: int, json_mode: bool, interval: float):
-    """Wait for leaf futures, logging "n/total units" lines (or dask's bar in a terminal)."""
+def _progress(futures: list, total: int, json_mode: bool, interval: float, root=None):
+    """Wait for leaf futures, logging "n/total units" lines (or dask's bar in a terminal).
+
+    Empties ``futures``: a leaf's future is dropped once counted, so the scheduler frees
+    the leaf's blob as soon as its merge node has run (holding every leaf future to the
+    end kept every leaf blob of the build in worker memory at once).
+    """
     from distributed import as_completed
 
     if not futures:
         return
-    if sys.stderr.isatty() and not json_mode:
+    if sys.stderr.isatty() and not json_mode and root is not None:
         try:
             import contextlib
 
             from distributed.diagnostics.progressbar import TextProgressBar
 
+            futures.clear()
             # dask's bar writes to stdout; human output belongs on stderr
             with contextlib.redirect_stdout(sys.stderr):
-                TextProgressBar(futures, complete=True, start=True)
+                TextProgressBar([root], complete=True, start=True)  # every task below the root
                 sys.stderr.write("\n")
             return
         except Exception:  # pragma: no cover - fall back to log lines
             pass
+    pending = as_completed(futures, with_results=False)
+    futures.clear()  # as_completed holds each future only until it yields it
     done, last = 0, time.monotonic()
-    for _ in as_completed(futures, with_results=False):
+    for _ in pending:
         done += 1
         now = time.monotonic()
-        if now - last >= interval or done == len(futures):
+        if now - last >= interval or done == total:
             log.info("%d/%d units sketched", done, total)
             last = now
 
@@ -546,8 +554,9 @@ def _run_graph(plan, needed, unit_of, spec, cached, client, scheduler, scheduler
         # lost worker's tasks are recomputed by the scheduler anyway
         futs = cl.client.get(dsk, [root_key] + leaf_keys, sync=False)
         root_fut, leaf_futs = futs[0], futs[1:]
-        _progress(leaf_futs, len(leaf_futs), json_mode, float(config.get("progress_seconds")))
-        del leaf_futs, futs
+        del futs
+        _progress(leaf_futs, len(leaf_futs), json_mode, float(config.get("progress_seconds")),
+                  root=root_fut)
         return root_fut.result()
     finally:
         cl.close()
