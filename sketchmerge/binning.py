@@ -545,7 +545,8 @@ def bin_columns(data, names, indexes, dtype, out=None, threads=None) -> np.ndarr
     elif (not isinstance(out, np.ndarray) or out.shape != shape or out.dtype not in (np.uint8, np.uint16)
           or out.dtype.itemsize < dtype.itemsize or not out.flags.writeable):
         got = f"{out.dtype} {out.shape}" if isinstance(out, np.ndarray) else type(out).__name__
-        raise InputError(f"out: expected a writable {dtype.name} (or uint16) array of shape {shape}, got {got}")
+        wider = " or uint16" if dtype == np.uint8 else ""
+        raise InputError(f"out: expected a writable {dtype.name}{wider} array of shape {shape}, got {got}")
     if rows == 0 or not names:
         return out
     if threads is None:
