@@ -360,7 +360,13 @@ class CutTable:
         >>> t.rebin(4).edges("age").tolist()
         [249.0, 499.0, 749.0, 999.0]
         """
+        if isinstance(bins, (bool, np.bool_)) or not isinstance(bins, (int, np.integer)) \
+                or not 1 <= bins <= _MAX_BINS:
+            raise InputError(f"rebin bins: expected an integer from 1 to {_MAX_BINS}, got {bins!r}")
+        bins = int(bins)
         need = default_rank_error(bins) if rank_error is None else float(rank_error)
+        if not 0.0 < need < 0.5:
+            raise InputError(f"rebin rank_error: expected a number in (0, 0.5), got {rank_error!r}")
         out, bad = [], []
         for name in self._order:
             f = feature_cuts(name, self._features[name].summary, bins, need)
