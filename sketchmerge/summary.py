@@ -1041,8 +1041,9 @@ class Summary:
 
         Exact summaries invert the weighted empirical CDF: the first value
         whose weight at or below reaches ``d`` (Hyndman & Fan 1996 definition
-        1, numpy's ``method="inverted_cdf"``), for ``d = 0`` the first value
-        with positive weight.  Other summaries use the query
+        1, numpy's ``method="inverted_cdf"``; :meth:`quantiles` applies the
+        same rule in normalised rank and answers ``q = 0`` with the first
+        value carrying weight, as numpy does).  Other summaries use the query
         of Chen & Guestrin (2016, Appendix A): between the two entries whose
         rank midpoints bracket ``d``, the one on ``d``'s side of the midpoint
         of the gap between them, ties going to the lower entry as in the exact
@@ -1052,13 +1053,7 @@ class Summary:
         lo, hi, w = self._rmin, self._rmax, self._w
         k = lo.size
         if self._exact:
-            if self._total <= 0.0:
-                return np.zeros(d.shape[0], dtype=np.int64)
-            idx = np.searchsorted(hi, d, side="left")
-            # rank 0 is answered by the first value carrying weight, as numpy does:
-            # a zero-weight minimum is a point of the data but not of its distribution
-            idx[d <= 0.0] = np.searchsorted(hi, 0.0, side="right")
-            return np.minimum(idx, k - 1)
+            return np.minimum(np.searchsorted(hi, d, side="left"), k - 1)
         mid = (lo + hi) * 0.5
         i = np.searchsorted(mid, d, side="left") - 1
         out = np.empty(d.shape[0], dtype=np.int64)
@@ -1074,10 +1069,22 @@ class Summary:
         return out
 
     def quantiles(self, q) -> np.ndarray:
-        """Values at normalised target ranks ``q`` in [0, 1].
+        """Values at normalised target ranks ``q`` in [0, 1] (array in, array out).
 
-        Each returned value's exact rank interval lies within ``epsilon / 2``
-        of its target.  An empty summary answers NaN.
+        Each returned value's exact rank interval ``[weight below, weight at
+        or below] / W`` lies within ``epsilon / 2`` of its target.  An exact
+        summary answers with the weighted inverse empirical CDF: the first
+        value whose normalised weight at or below is ``>= q`` (Hyndman & Fan
+        1996 definition 1, the same answers as ``numpy.quantile(x, q,
+        weights=w, method="inverted_cdf")``), and ``q = 0`` with the first
+        value carrying weight.  An empty summary answers NaN.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> from sketchmerge import Summary
+        >>> Summary.from_values(np.array([15.0, 20, 35, 40, 50])).quantiles([0.3, 0.4, 0.5]).tolist()
+        [20.0, 20.0, 35.0]
         """
         q = np.asarray(q, dtype=_F8)
         scalar = q.ndim == 0
