@@ -22,8 +22,8 @@ How a load works and why it is safe with many processes:
    the cache key is (table, version, checksum).
 2. A cached file with that name is read and its bytes hashed; if they match it
    is used.  If they do not (a truncated or corrupted file), the file is
-   replaced by a fresh download, with a warning: the source still holds the
-   good copy, so a damaged cache never stops a training job.
+   replaced by a fresh download (step 3), with a warning: the source still
+   holds the good copy, so a damaged cache never stops a training job.
 3. Otherwise the process takes an exclusive ``flock`` on the version's lock file
    (only where ``fcntl`` exists: one process downloads, the others wait and
    then read its file), downloads the document, checks its sha256 against the
@@ -39,7 +39,7 @@ How a load works and why it is safe with many processes:
    old file (the message names it) if the rebuild was intended.
 
 Files can be deleted at any time (a reader then downloads again); nothing
-here ever deletes a document except one that failed its checksum.  Use local
+here ever deletes a cached document (a damaged one is overwritten).  Use local
 disks: ``flock`` over network file systems is not dependable.
 """
 
@@ -108,8 +108,13 @@ def _locked(path: str):
         os.close(fd)  # closing releases the lock
 
 
-def _read_checked(path: str, sha: str) -> bytes | None:
-    """The file's bytes if they hash to ``sha``; None when missing; a damaged file is removed."""
+def _read_checked(path: str, sha: str, *, warn: bool = False) -> bytes | None:
+    """The file's bytes if they hash to ``sha``, else None (missing or damaged).
+
+    A damaged file is left in place: only the process holding the version's
+    lock replaces it (atomically), so no process can delete a good copy that
+    another has just written.
+    """
     try:
         with open(path, "rb") as f:
             data = f.read()
@@ -118,10 +123,9 @@ def _read_checked(path: str, sha: str) -> bytes | None:
     got = hashlib.sha256(data).hexdigest()
     if got == sha:
         return data
-    log.warning("cached cut table %s is damaged (expected sha256 %s, got %s); downloading it again",
-                path, sha, got)
-    with contextlib.suppress(FileNotFoundError):
-        os.remove(path)
+    if warn:
+        log.warning("cached cut table %s is damaged (expected sha256 %s, got %s); downloading it again",
+                    path, sha, got)
     return None
 
 
@@ -189,7 +193,7 @@ def read_document(store, version: int | None, cache_dir: str) -> tuple[int, byte
     os.makedirs(folder, exist_ok=True)
     _check_unchanged(folder, store.url, v, sha)
     with _locked(os.path.join(folder, f"v{v:08d}.lock")):
-        data = _read_checked(path, sha)  # another process may have finished meanwhile
+        data = _read_checked(path, sha, warn=True)  # another process may have finished meanwhile
         if data is not None:
             return v, data, True
         got_v, data = store.read_version(v)
