@@ -304,14 +304,37 @@ def all_commands() -> list[tuple[str, list[str], list[str]]]:
     return out
 
 
+def _option_strings(parser, sub: str | None) -> set[str]:
+    import argparse
+
+    opts = {o for a in parser._actions for o in a.option_strings}
+    for a in parser._actions:
+        if isinstance(a, argparse._SubParsersAction) and sub in a.choices:
+            opts |= {o for b in a.choices[sub]._actions for o in b.option_strings}
+    return opts
+
+
 def parse(argv: list[str]):
-    """Parse with the real CLI parser; None for --help/--version (argparse exits 0)."""
+    """Parse with the real CLI parser; None for --help/--version (argparse exits 0).
+
+    Options must be spelled out: argparse also takes unambiguous prefixes
+    ("--weight-col"), which a later option of the same prefix would break.
+    """
+    parser = make_parser()
     try:
-        return make_parser().parse_args(argv)
+        args = parser.parse_args(argv)
     except SystemExit as e:
         if e.code in (0, None) and set(argv) & {"--help", "-h", "--version"}:
             return None
         raise AssertionError(f"does not parse (argparse exit {e.code}): sketchmerge {shlex.join(argv)}") from None
+    known = _option_strings(parser, argv[0] if argv else None)
+    for tok in argv:
+        if tok == "--":
+            break
+        if tok.startswith("--") and tok.split("=", 1)[0] not in known:
+            raise AssertionError(f"abbreviated or unknown option {tok.split('=', 1)[0]!r}: "
+                                 f"sketchmerge {shlex.join(argv)}")
+    return args
 
 
 def _subcommand_calls(sub: str, where_prefix: str) -> list[tuple[str, list[str], list[str]]]:
@@ -348,6 +371,7 @@ def test_every_sketchmerge_command_parses():
 def test_command_parser_check_can_fail():
     # a typo'd option, a missing --out and an unknown subcommand must all be caught
     for argv in (["build", "s3://b/src", "--outt", "s3://b/t"], ["build", "s3://b/src"],
+                 ["build", "s3://b/src", "--out", "s3://b/t", "--weight-col", "w"],
                  ["biuld", "s3://b/src", "--out", "s3://b/t"], ["diff", "t", "--fail-above", "high"]):
         with pytest.raises(AssertionError):
             parse(argv)
@@ -750,12 +774,16 @@ def _run_cli(argv: list[str], env: dict, timeout: float = 240) -> subprocess.Com
                           text=True, timeout=timeout)
 
 
-def test_compose_seed_and_nightly_run_against_a_local_s3_store(s3_server, s3_options, s3_bucket, tmp_path):
+def test_compose_seed_and_nightly_run_against_a_local_s3_store(s3_server, s3_options, tmp_path):
     """The seed script and the nightly build, exactly as written in the compose file
     (bucket and scheduler swapped for the test's), against moto on 127.0.0.1."""
+    import uuid
+
     import numpy as np
     import pyarrow.dataset as ds
     import s3fs
+
+    s3_bucket = "sm-" + uuid.uuid4().hex[:12]  # not created here: the seed script creates it
 
     svcs = compose()["services"]
     ep = image_entrypoint()
