@@ -422,7 +422,7 @@ def _first_level(x, w, n, xmin, xmax):
     tot = float(share.sum())
     ncell = np.ones(emax + 1 - emin, np.int64)
     if tot > 0.0:
-        ncell += (share * ((1 << m_bits) / tot)).astype(np.int64)
+        ncell += (share / tot * (1 << m_bits)).astype(np.int64)  # (not M / tot: tot may be subnormal)
     np.minimum(ncell, 1 << 16, out=ncell)  # a binade resolves at most 16 mantissa bits here
     base = np.cumsum(ncell) - ncell
     size = int(base[-1] + ncell[-1])
