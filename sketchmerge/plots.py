@@ -137,8 +137,12 @@ def plot_feature(cuts, feature: str, png, *, xscale: str | None = None, dpi: int
     ax.set_ylabel("share of weight at or below x")
     ax.grid(True, alpha=0.25)
     miss = f"missing {f.missing_share:.1%} of weight ({s.missing_count:,} rows, code {edges.size})"
-    ax.legend(loc="lower right", fontsize=8, framealpha=0.9,
-              title="; ".join(inf_note) if inf_note else None, title_fontsize=8)
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(loc="lower right", fontsize=8, framealpha=0.9,
+                  title="; ".join(inf_note) if inf_note else None, title_fontsize=8)
+    else:  # nothing ranked: say so instead of an empty frame
+        ax.text(0.5, 0.5, "no values: every row is missing", ha="center", va="center",
+                transform=ax.transAxes, fontsize=11, color="#555555")
     err = "exact" if f.rank_error == 0 else f"certified edge rank error {f.rank_error:.2g}"
     fig.suptitle(f"{feature}  ({f.dtype}, {f.mode}, {edges.size} edges, {err})", fontsize=11)
     ax.set_title(f"{s.count:,} ranked rows, total weight {s.total_weight:.4g}; {miss}", fontsize=9)
