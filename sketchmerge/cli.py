@@ -326,7 +326,17 @@ def _cmd_gc(args, so) -> int:
 
 def _cmd_diff(args, so) -> int:
     from .drift import diff, format_diff
+    from .store import TableStore
 
+    if args.from_version is None and args.to_version is None:
+        versions = TableStore(args.table, storage_options=so or None).versions()
+        if len(versions) == 1:
+            # the first night of a nightly diff: nothing to compare with is not an alert
+            doc = {"table": args.table, "from_version": None, "to_version": versions[0],
+                   "features": [], "over_threshold": [],
+                   "note": "only one version is published: nothing to compare with yet"}
+            _emit(args, doc, f"{args.table}: {doc['note']}")
+            return 0
     rep = diff(args.table, from_version=args.from_version, to_version=args.to_version,
                storage_options=so or None)
     if args.plot:

@@ -100,3 +100,11 @@ def test_demo_runs_and_verifies(tmp_path, capsys):
                                   "vent_open", "co2_ppm"}
     assert cuts.edges("rack_tier").tolist() == [1, 2, 3, 4, 5]
     assert 0.05 < cuts.feature("soil_moisture_pct").missing_share < 0.11
+
+
+def test_diff_with_one_version_is_not_an_alert(table, capsys):
+    assert main(["diff", str(table / "t"), "--fail-above", "0.25", "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["features"] == [] and "only one version" in doc["note"]
+    # an explicit version that does not exist is still an error (exit 4)
+    assert main(["diff", str(table / "t"), "--from", "7"]) == 4
