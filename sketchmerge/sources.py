@@ -72,6 +72,7 @@ import datetime as _dt
 import email.utils
 import errno as _errno
 import hashlib
+import io
 import json
 import re
 import struct
@@ -820,12 +821,81 @@ def _plan_ipc_file(fs, f, path: str, size: int) -> tuple[tuple[int, int, int], .
 
 # --------------------------------------------------------------------------- per-file planning
 
-def _open(fs, protocol: str, path: str, sequential: bool = False):
+class _WholeReads(io.RawIOBase):
+    """A read-only view of an opened object whose reads return every byte asked for.
+
+    A stream may return fewer bytes than asked (a short read), which pyarrow
+    takes for the end of the file; a response cut off mid-transfer ends the
+    object early although its listing reports more.  Here a short read is
+    completed by reading again, and an object that ends before its listed
+    ``size`` raises StorageError (transient: the build retries the unit) rather
+    than passing on a truncated Parquet file as corrupt data or a truncated CSV
+    silently as fewer rows.  ``size < 0`` (unknown) only completes short reads.
+    """
+
+    def __init__(self, f, size: int, where: str):
+        super().__init__()
+        self._f, self._size, self._where = f, int(size), where
+
+    def readable(self) -> bool:
+        return True
+
+    def seekable(self) -> bool:
+        return True
+
+    def seek(self, offset, whence=0):
+        return self._f.seek(offset, whence)
+
+    def tell(self) -> int:
+        return self._f.tell()
+
+    def read(self, n=-1):
+        if self._size < 0:
+            if n is None or n < 0:
+                return self._f.read()
+            pos, want = -1, n
+        else:
+            pos = self._f.tell()
+            left = max(self._size - pos, 0)
+            want = left if n is None or n < 0 else min(n, left)
+        first = self._f.read(want) if want > 0 else b""
+        if len(first) == want:
+            return first
+        chunks, got = [first], len(first)
+        while got < want:
+            c = self._f.read(want - got)
+            if not c:
+                if self._size < 0:
+                    break
+                raise StorageError(
+                    f"{self._where}: expected {want} bytes at byte {pos} of {self._size} listed, "
+                    f"got {got}: the object ended early (a response cut short?)")
+            chunks.append(c)
+            got += len(c)
+        return b"".join(chunks)
+
+    def readinto(self, b) -> int:
+        data = self.read(len(b))
+        b[:len(data)] = data
+        return len(data)
+
+    def close(self) -> None:
+        if not self.closed:
+            try:
+                self._f.close()
+            finally:
+                super().close()
+
+
+def _open(fs, protocol: str, path: str, sequential: bool = False, size: int = -1,
+          where: str = ""):
     if protocol in _LOCAL_PROTOCOLS or sequential:
-        return fs.open(path, "rb")
-    # Exact range reads: pyarrow asks for the column chunks it needs and
-    # nothing should be fetched ahead of that.
-    return fs.open(path, "rb", cache_type="none")
+        f = fs.open(path, "rb")
+    else:
+        # Exact range reads: pyarrow asks for the column chunks it needs and
+        # nothing should be fetched ahead of that.
+        f = fs.open(path, "rb", cache_type="none")
+    return _WholeReads(f, size, where or path)
 
 
 def _check_duplicates(names: list[str], where: str) -> None:
@@ -878,7 +948,7 @@ def _plan_file(fs, protocol: str, fi: _FileInfo, secrets) -> _FilePlan:
     if fi.size == 0:
         return _FilePlan(schema=(), fmt=fi.fmt, kind="empty")
     try:
-        f = _open(fs, protocol, fi.path, sequential=fi.fmt == "csv")
+        f = _open(fs, protocol, fi.path, sequential=fi.fmt == "csv", size=fi.size, where=where)
     except Exception as e:  # noqa: BLE001
         _storage_error(e, where, secrets)
     try:
@@ -1442,7 +1512,8 @@ def read_unit(unit: Unit, columns: list[str], *, protocol: str,
         if unit.fmt == "csv" and (size == 0 or unit.nbytes == 0):
             arrays, rows = {}, 0
         else:
-            with _open(fs, protocol, unit.path, sequential=unit.fmt == "csv") as f:
+            with _open(fs, protocol, unit.path, sequential=unit.fmt == "csv", size=size,
+                       where=where) as f:
                 if unit.fmt == "csv":
                     arrays, rows, kinds = _read_csv(f, unit, cols, where)
                 else:

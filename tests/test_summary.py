@@ -611,3 +611,37 @@ def test_rank_error_gives_about_one_over_eps_buckets():
         assert len(s) - 1 == b and s.bound == pytest.approx(eps)
         edges = np.unique(s.quantiles(np.arange(1, b) / b))
         assert len(edges) + 1 == b
+
+
+def test_merge_sums_the_extended_bounds_of_its_inputs():
+    # Chen & Guestrin (2016, Appendix A): at every point of the union the merged bounds
+    # are the sums of the inputs' extended bounds (read here through rank_bounds)
+    r = rng(30)
+    for trial in range(20):
+        parts = []
+        for _ in range(int(r.integers(2, 7))):
+            n = int(r.integers(1, 400))
+            x = r.integers(-40, 40, n).astype(np.float64) if trial % 2 else r.normal(size=n)
+            s = Summary.from_values(x, r.integers(0, 4, n).astype(np.float64), capacity=int(r.integers(1, 30)))
+            if s.count and s.total_weight > 0:
+                parts.append(s)
+        m = parts[0].merge(*parts[1:])
+        lo = sum(p.rank_bounds(m.values)[0] * p.total_weight for p in parts)
+        hi = sum(p.rank_bounds(m.values)[1] * p.total_weight for p in parts)
+        np.testing.assert_allclose(m.rmin, lo, rtol=0, atol=1e-9)
+        np.testing.assert_allclose(m.rmax, hi, rtol=0, atol=1e-9)
+        assert m.total_weight == sum(p.total_weight for p in parts)
+
+
+@pytest.mark.parametrize("dist", ["normal", "heavy_tail", "point_masses", "lognormal", "subnormals"])
+def test_capacity_refinement_levels(dist, monkeypatch):
+    # force the histogram refinement levels (normally only large work units reach them)
+    import sketchmerge.summary as core
+
+    monkeypatch.setattr(core, "_FINISH_ROWS", 16)
+    r = rng(31)
+    x = DISTRIBUTIONS[dist](r, 60_000)
+    w = r.integers(0, 5, 60_000).astype(np.float64)
+    for b in (7, 300, 3000):
+        assert Summary.from_values(x, w, capacity=b) == Summary.from_values(x, w).prune(b)
+        assert Summary.from_values(x, capacity=b) == Summary.from_values(x).prune(b)
