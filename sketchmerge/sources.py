@@ -990,18 +990,59 @@ def _csv_stream(f, path: str):
     return pa.CompressedInputStream(f, codec) if codec else f
 
 
+class _Detachable:
+    """A read-only stream over ``f`` that stops touching ``f`` once detached.
+
+    pyarrow's streaming CSV reader keeps reading ahead on its I/O threads after
+    it has returned the schema (``use_threads=False`` does not stop that), so the
+    header reader gets this view and it is detached before the caller seeks or
+    closes ``f``: a read in flight finishes first (the lock), later ones see the
+    end of the stream."""
+
+    def __init__(self, f):
+        self._f = f
+        self._lock = threading.Lock()
+        self._off = False
+        self.closed = False
+
+    def readable(self) -> bool:
+        return True
+
+    def seekable(self) -> bool:
+        return False
+
+    def read(self, n=-1):
+        with self._lock:
+            return b"" if self._off else self._f.read(n)
+
+    def tell(self) -> int:
+        with self._lock:
+            return 0 if self._off else self._f.tell()
+
+    def close(self) -> None:
+        self.closed = True
+
+    def detach(self) -> None:
+        with self._lock:
+            self._off = True
+
+
 def _csv_header(f, path: str) -> pa.Schema | None:
     """Column names and types inferred from the first block; None for an empty file.
 
-    Single-threaded so no read-ahead is still running on ``f`` afterwards."""
+    Reads through a detachable view, so no read-ahead is still running on ``f``
+    afterwards (it raced with the next reader of ``f`` and changed its position)."""
+    view = _Detachable(f)
     try:
-        reader = pcsv.open_csv(_csv_stream(f, path), read_options=pcsv.ReadOptions(
+        reader = pcsv.open_csv(_csv_stream(view, path), read_options=pcsv.ReadOptions(
             block_size=_CSV_PLAN_BLOCK, use_threads=False))
+        return reader.schema
     except pa.ArrowInvalid as e:
         if "Empty CSV file" in str(e):
             return None
         raise
-    return reader.schema
+    finally:
+        view.detach()
 
 
 def _group(pieces, budget: int) -> list[tuple[int, int]]:
