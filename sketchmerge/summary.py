@@ -122,10 +122,10 @@ def check_weights(weights, n: int, name: str = "weights") -> np.ndarray:
 _SIGN = np.int64(-(2**63))
 _LOW63 = np.int64(2**63 - 1)
 _U64_MAX = np.uint64(2**64 - 1)
-_KEY_NEG_ZERO = np.uint64(2**63 - 1)   # float_keys(-0.0) before folding; +0.0 is 2**63
 _SAMPLE = 4096          # strided sample that picks the first-level map
-_FINISH_ROWS = 32768    # rows left in refined cells: sort them instead of bucketing again
+_FINISH_ROWS = 8192     # rows left in refined cells: sort them instead of bucketing again
 _FIRST_BITS = 16        # at most 2**16 first-level cells
+_DIRECT_ROWS = 24       # direct pruned construction from this many rows per unit of capacity
 _SPLIT = 1              # sub-cells per row when refining a cell
 _SCRATCH_MAX = 1 << 21  # scratch buffers up to this many elements are kept per thread
 EXACT_METHODS = ("auto", "sort", "count", "radix", "buckets")
@@ -149,29 +149,32 @@ def _scratch(slot: str, n: int, dtype) -> np.ndarray:
 
 
 def float_keys(x, out: np.ndarray | None = None) -> np.ndarray:
-    """Order-preserving uint64 image of float64 bits, with ``-0.0`` folded into ``+0.0``.
+    """Order-preserving uint64 image of float64 bits; ``-0.0`` and ``+0.0`` get one key.
 
-    Non-negative floats get their sign bit set and negative floats have every
-    bit flipped, so unsigned integer order is float order.  Written into
-    ``out`` (a uint64 array of the same length) when given.
+    With ``i`` the bits as a signed integer and ``m`` its 63 magnitude bits, a
+    non-negative float maps to ``m`` and a negative one to ``-m``; flipping the
+    top bit then makes unsigned order float order.  ``-0.0`` (``m = 0``) lands
+    on ``+0.0``'s key.  Written into ``out`` (a uint64 array of the same length)
+    when given; one scratch temporary.
     """
     i = np.ascontiguousarray(x, dtype=_F8).view(np.int64)
-    k = np.right_shift(i, 63, out=None if out is None else out.view(np.int64))
-    np.bitwise_and(k, _LOW63, out=k)
-    np.bitwise_xor(k, i, out=k)
+    s = np.right_shift(i, 63, out=_scratch("sign", i.shape[0], np.int64))
+    k = np.bitwise_and(i, _LOW63, out=None if out is None else out.view(np.int64))
+    np.bitwise_xor(k, s, out=k)
+    np.subtract(k, s, out=k)  # conditional negation: (m ^ -1) + 1 == -m
     np.bitwise_xor(k, _SIGN, out=k)
-    k = k.view(np.uint64)
-    np.add(k, k == _KEY_NEG_ZERO, out=k, casting="unsafe")
-    return k
+    return k.view(np.uint64)
 
 
 def key_values(k) -> np.ndarray:
     """Inverse of :func:`float_keys` (a new float64 array shaped like ``k``)."""
     a = np.asarray(k, dtype=np.uint64)
     i = np.bitwise_xor(a.reshape(-1).view(np.int64), _SIGN)
-    m = np.right_shift(i, 63)
-    np.bitwise_and(m, _LOW63, out=m)
-    np.bitwise_xor(i, m, out=i)
+    s = np.right_shift(i, 63)
+    np.bitwise_xor(i, s, out=i)
+    np.subtract(i, s, out=i)          # magnitude bits
+    np.bitwise_and(s, _SIGN, out=s)
+    np.bitwise_or(i, s, out=i)        # sign bit back on for negatives
     return i.view(_F8).reshape(a.shape)
 
 
@@ -570,15 +573,19 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
         npar = par_c.shape[0]
         if rows.shape[0] <= _FINISH_ROWS:
             # few rows left: sort them (parents are disjoint key ranges, in key order)
-            o = np.argsort(kr)
-            ks = kr[o]
+            if wr is None:  # parents are key ranges in parent order: a plain sort groups them
+                ks = np.sort(kr)
+                sorted_par = np.repeat(np.arange(npar), np.bincount(rp, minlength=npar))
+            else:
+                o = np.argsort(kr)
+                ks, sorted_par = kr[o], rp[o]
             starts = _run_starts(ks)
             if starts is None:
                 starts = np.arange(ks.shape[0])
             dk = ks[starts]
             dw = (_run_lengths(starts, ks.shape[0]).astype(_F8) if wr is None
                   else np.add.reduceat(wr[o], starts))
-            dpar = rp[o][starts]
+            dpar = sorted_par[starts]
             dex = _exclusive_cumsum(dw)
             first_d = np.searchsorted(dpar, np.arange(npar))
             nd = np.bincount(dpar, minlength=npar)
@@ -815,7 +822,8 @@ class Summary:
         common = dict(count=x.shape[0], missing_count=missing_count,
                       missing_weight=missing_weight, dtype=dtype)
         if capacity is not None and x.shape[0] > capacity + 1:
-            got = pruned_entries(x, w, capacity)
+            # the direct route pays per target rank; it wins once rows outnumber them well
+            got = pruned_entries(x, w, capacity) if x.shape[0] >= _DIRECT_ROWS * capacity else None
             if got is None:
                 return cls._exact_from_entries(*_exact_entries(x, w, method), **common).prune(capacity)
             xe, lo, we, total = got

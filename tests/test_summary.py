@@ -349,9 +349,17 @@ CAPACITY_CASES = [
 ]
 
 
+@pytest.fixture
+def always_direct(monkeypatch):
+    """Take the direct pruned route whatever the ratio of rows to capacity."""
+    import sketchmerge.summary as core
+
+    monkeypatch.setattr(core, "_DIRECT_ROWS", 1)
+
+
 @pytest.mark.parametrize("dist, n, b", CAPACITY_CASES)
 @pytest.mark.parametrize("weighting", ["unit", "integer", "mostly_zero_int"])
-def test_capacity_equals_exact_then_prune(dist, n, b, weighting):
+def test_capacity_equals_exact_then_prune(dist, n, b, weighting, always_direct):
     # with integer weights every rank is an exact sum, so the direct construction and
     # "exact summary, then prune" must give the same summary, bit for bit
     r = rng(n + b)
@@ -368,7 +376,7 @@ def test_capacity_equals_exact_then_prune(dist, n, b, weighting):
 
 
 @pytest.mark.parametrize("dist, n, b", CAPACITY_CASES)
-def test_capacity_with_float_weights_against_oracle(dist, n, b):
+def test_capacity_with_float_weights_against_oracle(dist, n, b, always_direct):
     r = rng(7 * n + b)
     x = DISTRIBUTIONS[dist](r, n)
     w = r.gamma(0.3, 1.0, n) * np.where(r.random(n) < 0.2, 0.0, 1.0)
@@ -634,7 +642,7 @@ def test_merge_sums_the_extended_bounds_of_its_inputs():
 
 
 @pytest.mark.parametrize("dist", ["normal", "heavy_tail", "point_masses", "lognormal", "subnormals"])
-def test_capacity_refinement_levels(dist, monkeypatch):
+def test_capacity_refinement_levels(dist, monkeypatch, always_direct):
     # force the histogram refinement levels (normally only large work units reach them)
     import sketchmerge.summary as core
 
