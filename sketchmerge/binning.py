@@ -13,8 +13,8 @@ A binary search over 256 edges is eight dependent, unpredictable branches
 per value.  Instead each feature gets a small index (:class:`EdgeIndex`):
 
 * a *cell function* ``cell(x)``, monotone non-decreasing in ``x``, mapping the
-  clipped value range onto at most a few thousand cells, and computed with a
-  handful of whole-array numpy operations.  Two kinds exist and the one with
+  clipped value range onto 4096 cells (up to 65536 when edges crowd), and
+  computed with a handful of whole-array numpy operations.  Two kinds exist and the one with
   the fewer edges per cell is chosen per feature: a uniform grid over the
   values (``(x - lo) * scale``, good for bounded features) and a uniform grid
   over the order-preserving integer image of the float bits (roughly
@@ -28,7 +28,9 @@ every edge in a higher cell is above it, so ``start[cell(x)]`` plus the
 in-cell count is exactly ``#{edges < x}``, whatever rounding ``cell`` does:
 the edges' own cells are computed by the very same operations.  Values are
 clipped to ``[edges[0], edges[-1]]`` first, which gives the clip to the last
-bin for free; NaN is patched afterwards.  Typical features need one search
+bin for free (the edges, or float32 thresholds below, are strictly
+increasing, so a value clipped to the last edge counts ``k - 1`` edges below
+it); NaN is patched afterwards.  Typical features need one search
 step, so a value costs about ten cache-resident vector passes instead of a
 binary search.
 
