@@ -206,7 +206,8 @@ def main(argv=None):
     for col, weighted, scan, res in rows:
         exact = {k: v for k, v in res.items() if k.startswith("exact:")}
         fastest = min(exact, key=exact.get)
-        print(f"    {col:16s} {'weighted  ' if weighted else 'unweighted'} direct {res[f'direct capacity={args.capacity}'] / scan:5.2f}"
+        direct = res[f"direct capacity={args.capacity}"]
+        print(f"    {col:16s} {'weighted  ' if weighted else 'unweighted'} direct {direct / scan:5.2f}"
               f"   exact {exact[fastest] / scan:5.2f} ({fastest[6:]}, auto {res['exact:auto'] / scan:5.2f})"
               f"   argsort+cumsum {res['argsort+cumsum'] / scan:5.2f}")
 

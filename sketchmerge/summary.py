@@ -114,20 +114,20 @@ def check_weights(weights, n: int, name: str = "weights") -> np.ndarray:
 # (they compare equal to +0.0, and float_keys folds them into +0.0's key).
 #
 # Measured on the reference machine (benchmarks/README.md), fresh memory is
-# the dominant cost at work-unit sizes: the first touch of every 4 KiB page
-# of a new array faults, which costs more than the arithmetic on it.  So the
-# per-row temporaries live in per-thread scratch buffers that are reused from
-# call to call, and only arrays a summary keeps are allocated fresh.
+# a dominant cost at work-unit sizes: the first touch of every 4 KiB page of
+# a new array faults, which can cost more than the arithmetic on it.  So the
+# per-row temporaries live in per-thread scratch buffers reused from call to
+# call (about 40 bytes per row of the largest input seen, at most 1M rows per
+# buffer; larger inputs allocate), and only arrays a summary keeps are fresh.
 # ---------------------------------------------------------------------------
 _SIGN = np.int64(-(2**63))
 _LOW63 = np.int64(2**63 - 1)
 _U64_MAX = np.uint64(2**64 - 1)
-_SAMPLE = 4096          # strided sample that picks the first-level map
+_SAMPLE = 2048          # strided sample that shapes the first-level map
 _FINISH_ROWS = 8192     # rows left in refined cells: sort them instead of bucketing again
 _FIRST_BITS = 16        # at most 2**16 first-level cells
 _DIRECT_ROWS = 24       # direct pruned construction from this many rows per unit of capacity
-_SPLIT = 1              # sub-cells per row when refining a cell
-_SCRATCH_MAX = 1 << 21  # scratch buffers up to this many elements are kept per thread
+_SCRATCH_MAX = 1 << 20  # scratch buffers up to this many elements are kept per thread
 EXACT_METHODS = ("auto", "sort", "count", "radix", "buckets")
 
 _tls = threading.local()
@@ -522,10 +522,16 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
         return None
     kmin, kmax = float_keys(np.array([x[imin], x[imax]]))
     cells, m, heavy = _first_level(x, w, n, float(x[imin]), float(x[imax]))
-    cnt = np.bincount(cells, minlength=m)
-    if np.count_nonzero(cnt) <= b + 1:
-        return None
-    hw = cnt.astype(_F8) if w is None else np.bincount(cells, weights=w, minlength=m)
+    if w is None:
+        cnt = np.bincount(cells, minlength=m)
+        if np.count_nonzero(cnt) <= b + 1:
+            return None
+        hw = cnt.astype(_F8)
+    else:
+        hw = np.bincount(cells, weights=w, minlength=m)
+        # few occupied cells mean few distinct values (zero-weight rows count too)
+        if np.count_nonzero(hw) <= b + 1 and np.count_nonzero(np.bincount(cells, minlength=m)) <= b + 1:
+            return None
     # exclusive cumulative weight of the cells (integer counts sum faster and exactly)
     ex = np.empty(m, _F8)
     ex[0] = 0.0
@@ -616,7 +622,7 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
             pmn, pmx, par_c = pmn[keep], pmx[keep], par_c[keep]
             npar = par_c.shape[0]
         # split each parent's key range into about one sub-cell per row
-        nsub = np.clip(np.bincount(rp, minlength=npar) * _SPLIT, 2, 1 << 16)
+        nsub = np.clip(np.bincount(rp, minlength=npar), 2, 1 << 16)
         scale = nsub / ((pmx - pmn).astype(_F8) + 1.0)
         loc = (kr - pmn[rp]).astype(_F8)
         loc *= scale[rp]

@@ -298,7 +298,8 @@ def test_declared_sizes_do_not_allocate():
     st.none() | st.booleans() | st.integers(-(2**63), 2**64 - 1) | st.floats() | st.text(max_size=8)
     | st.binary(max_size=32),
     lambda inner: st.lists(inner, max_size=5) | st.dictionaries(
-        st.sampled_from(["n", "x", "w", "layout", "count", "dtype", "exact", "bound", "names", "meta"]) | st.text(max_size=4),
+        st.sampled_from(["n", "x", "w", "layout", "count", "dtype", "exact", "bound", "names", "meta"])
+        | st.text(max_size=4),
         inner, max_size=12),
     max_leaves=30))
 def test_any_msgpack_payload_is_rejected_cleanly(obj):
