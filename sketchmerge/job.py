@@ -230,6 +230,7 @@ class _Cluster:
 
     def __init__(self, client=None, scheduler=None, scheduler_file=None, workers=None):
         self.own = None
+        self.made = client is None  # a client we connect here is ours to close
         if client is not None:
             self.client = client
             return
@@ -259,8 +260,9 @@ class _Cluster:
             raise SchedulerUnavailableError(f"cannot reach the Dask scheduler at {where}: {e}") from e
 
     def close(self):
-        if self.own is not None:
+        if self.made:
             self.client.close()
+        if self.own is not None:
             self.own.close()
 
 
