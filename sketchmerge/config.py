@@ -21,6 +21,7 @@ DEFAULTS: dict[str, object] = {
     "publish_attempts": 3,            # republish-on-top attempts after a lost race
     "missing_weight": "error",        # rows with a missing weight/prediction: error | zero
     "progress_seconds": 10.0,         # period of "n/total units" log lines off a terminal
+    "cache_dir": "",                  # local cache of downloaded tables for load() ("" = off)
 }
 
 

@@ -1022,6 +1022,14 @@ class TableStore:
         m, _ = self._resolve_manifest(_check_version(version))
         return list(m.keys)
 
+    def document_sha256(self, version: int) -> str:
+        """SHA-256 (hex) of published version ``version``'s document, from its manifest.
+
+        Lets a reader check a cached copy without downloading the document again.
+        """
+        m, _ = self._resolve_manifest(_check_version(version))
+        return m.document_sha256
+
     # --------------------------------------------------------------- publishing
 
     def publish(self, version: int, data: bytes, blob_keys: list[str]) -> None:
