@@ -446,6 +446,10 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
                                scheduler_file, workers, json_mode)
     sets, meta = decode_summary_set(root_blob)
     rows = int(meta.get("rows", 0))
+    if rows == 0:
+        # a table without rows has no edges: publishing it would silently replace good cuts
+        raise InputError(f"{redact(ds.source)}: expected at least one row to sketch, got none in "
+                         f"{len(ds.files)} data file(s); nothing published")
     feats = [feature_cuts(n, sets[n], o["bins"], o["rank_error"]) for n in features]
 
     options = {"bins": o["bins"], "rank_error": o["rank_error"], "weight_column": weight_column,
