@@ -450,6 +450,13 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
         # a table without rows has no edges: publishing it would silently replace good cuts
         raise InputError(f"{redact(ds.source)}: expected at least one row to sketch, got none in "
                          f"{len(ds.files)} data file(s); nothing published")
+    weighted = bool(weight_column) or o["hessian"] not in (None, "squared")
+    if weighted and all(s.total_weight + s.missing_weight == 0 for s in sets.values()):
+        # every row weighs 0: no quantile means anything, and the cuts would be min and max
+        what = (f"weight column {weight_column!r}" if weight_column else
+                f"{o['hessian']} hessian at prediction column {prediction_column!r}")
+        raise InputError(f"{redact(ds.source)}: {what}: expected a positive total weight, got 0 "
+                         f"over {rows} rows; nothing published")
     feats = [feature_cuts(n, sets[n], o["bins"], o["rank_error"]) for n in features]
 
     options = {"bins": o["bins"], "rank_error": o["rank_error"], "weight_column": weight_column,
