@@ -336,6 +336,14 @@ def _exact_buckets(x, w):
     return key_values(allk[o]), allw[o]
 
 
+def _few_distinct(x: np.ndarray) -> bool:
+    """Whether a strided sample of about 1024 rows is mostly repeats (a cheap hint
+    that the data hold few distinct values)."""
+    sample = np.sort(x[:: max(1, x.shape[0] // 1024)])
+    starts = _run_starts(sample)
+    return starts is not None and starts.shape[0] * 4 <= sample.shape[0]
+
+
 def _exact_entries(x, w, method="auto"):
     """:func:`exact_entries`, with ``None`` weights meaning one row per distinct value."""
     n = x.shape[0]
@@ -355,12 +363,16 @@ def _exact_entries(x, w, method="auto"):
         if bits > 26:
             raise ValueError(f"method 'count': expected at most 26 significant key bits, got {bits}")
         return _exact_count(x, w, reduced)
-    if method == "radix" or (method == "auto" and bits <= 32):
+    if method == "radix":
         return _exact_radix(x, w, reduced)
-    step = max(1, n // 1024)
-    sample = np.sort(reduced[0][::step])
-    if _sorted_unique(sample).shape[0] * 4 <= sample.shape[0]:  # many repeats: few distinct
+    # auto, from the measurements in benchmarks/README.md: few distinct values
+    # (spread over many key bits) -> buckets; weighted -> radix, which needs no
+    # argsort and copes with ties; unweighted -> radix for keys of at most 40
+    # significant bits (float32 data, rounded values), else np.sort
+    if _few_distinct(x):
         return _exact_buckets(x, w)
+    if w is not None or bits <= 40:
+        return _exact_radix(x, w, reduced)
     return _exact_sort(x, w)
 
 
@@ -376,9 +388,9 @@ def exact_entries(x: np.ndarray, w: np.ndarray | None, method: str = "auto"):
                    differ in few significant bits (small integers, codes, flags);
     ``"radix"``    LSD radix sort of the keys, 16 bits per pass;
     ``"buckets"``  one bucket pass; only buckets holding several values are sorted;
-    ``"auto"``     (default) picks by the significant key bits and a sample's
-                   repeat rate; the measurements behind the choice are in
-                   benchmarks/README.md.
+    ``"auto"``     (default) picks by the significant key bits, the weights and
+                   a sample's repeat rate; the measurements behind the choice
+                   are in benchmarks/README.md.
     """
     xu, wu = _exact_entries(x, w, method)
     return xu, (np.ones(xu.shape[0], _F8) if wu is None else wu.astype(_F8, copy=False))
@@ -496,9 +508,9 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
 
     Returns ``None`` when the caller should build the exact summary instead
     (and prune it): at most ``capacity + 1`` rows, one value, zero total
-    weight, or at most ``capacity + 1`` occupied first-level cells, which
-    means few distinct values (then the exact methods are faster still, and
-    the summary may stay exact).  Otherwise returns ``(values, rmin, weight,
+    weight, a sample that is mostly repeats, or at most ``capacity + 1``
+    occupied first-level cells; the last two mean few distinct values, where
+    the exact methods are faster still and the summary may stay exact.  Otherwise returns ``(values, rmin, weight,
     total)`` of the entries: the minimum, the maximum and, for each target
     rank ``d = i * W / capacity`` (``0 < i < capacity``), the first value
     whose weight at or below reaches ``d``, each with its exact rank sums.
@@ -514,8 +526,10 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
     """
     n = x.shape[0]
     b = int(capacity)
+    if n <= b + 1 or _few_distinct(x):
+        return None
     imin, imax = int(np.argmin(x)), int(np.argmax(x))
-    if n <= b + 1 or not x[imin] < x[imax]:
+    if not x[imin] < x[imax]:
         return None
     total = float(n) if w is None else float(np.sum(w))
     if not total > 0.0:

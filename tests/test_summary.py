@@ -111,6 +111,8 @@ DISTRIBUTIONS = {
     "float32": lambda r, n: r.normal(size=n).astype(np.float32),
     "with_inf_nan": lambda r, n: np.where(r.random(n) < 0.1, np.inf,
                                           np.where(r.random(n) < 0.1, np.nan, r.normal(size=n))),
+    "zero_inflated": lambda r, n: np.where(r.random(n) < 0.6, 0.0, r.lognormal(0.0, 1.5, n)),
+    "sentinels": lambda r, n: np.where(r.random(n) < 0.15, -999.0, np.where(r.random(n) < 0.2, -0.0, r.normal(size=n))),
 }
 
 WEIGHTINGS = {
@@ -346,6 +348,7 @@ CAPACITY_CASES = [
     ("reverse_sorted", 10_000, 50), ("few_distinct", 10_000, 3), ("few_distinct", 10_000, 4),
     ("signed_zeros", 5000, 2), ("subnormals", 5000, 3), ("large_integers", 20_000, 16),
     ("float32", 40_000, 1000), ("with_inf_nan", 20_000, 128), ("normal", 200_000, 2048),
+    ("zero_inflated", 50_000, 400), ("sentinels", 50_000, 64), ("zero_inflated", 8000, 4096),
 ]
 
 
@@ -641,7 +644,7 @@ def test_merge_sums_the_extended_bounds_of_its_inputs():
         assert m.total_weight == sum(p.total_weight for p in parts)
 
 
-@pytest.mark.parametrize("dist", ["normal", "heavy_tail", "point_masses", "lognormal", "subnormals"])
+@pytest.mark.parametrize("dist", ["normal", "heavy_tail", "zero_inflated", "lognormal", "sentinels"])
 def test_capacity_refinement_levels(dist, monkeypatch, always_direct):
     # force the histogram refinement levels (normally only large work units reach them)
     import sketchmerge.summary as core
