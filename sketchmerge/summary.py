@@ -336,12 +336,43 @@ def _exact_buckets(x, w):
     return key_values(allk[o]), allw[o]
 
 
-def _few_distinct(x: np.ndarray) -> bool:
-    """Whether a strided sample of about 1024 rows is mostly repeats (a cheap hint
-    that the data hold few distinct values)."""
+def _sample_stats(x: np.ndarray) -> tuple[bool, bool]:
+    """``(few_distinct, heavy)`` from a strided sample of about 1024 rows: mostly
+    repeats (a hint of few distinct values), and one value holding 1/20 of it."""
     sample = np.sort(x[:: max(1, x.shape[0] // 1024)])
     starts = _run_starts(sample)
-    return starts is not None and starts.shape[0] * 4 <= sample.shape[0]
+    if starts is None:
+        return False, False
+    top = int(_run_lengths(starts, sample.shape[0]).max())
+    return starts.shape[0] * 4 <= sample.shape[0], top * 20 >= sample.shape[0]
+
+
+def _few_distinct(x: np.ndarray) -> bool:
+    return _sample_stats(x)[0]
+
+
+def _monotone(x: np.ndarray) -> int:
+    """1 if ``x`` is sorted ascending, -1 if descending, else 0 (a sample decides
+    most inputs; only a sorted-looking sample costs a full pass)."""
+    n = x.shape[0]
+    if n < 2:
+        return 1
+    s = x[:: max(1, n // 256)]
+    flags = _scratch("runs", n - 1, bool)
+    if bool(np.all(s[1:] >= s[:-1])) and bool(np.greater_equal(x[1:], x[:-1], out=flags).all()):
+        return 1
+    if bool(np.all(s[1:] <= s[:-1])) and bool(np.less_equal(x[1:], x[:-1], out=flags).all()):
+        return -1
+    return 0
+
+
+def _exact_sorted(x, w, direction):
+    """Exact entries of data already in order (ties are adjacent)."""
+    if direction < 0:
+        x = x[::-1]
+        w = None if w is None else w[::-1]
+    xu, wu = _distinct(np.array(x, dtype=_F8), None if w is None else np.array(w, dtype=_F8))
+    return _fold_zero(xu), wu
 
 
 def _exact_entries(x, w, method="auto"):
@@ -355,6 +386,10 @@ def _exact_entries(x, w, method="auto"):
         return _exact_sort(x, w)
     if method == "buckets":
         return _exact_buckets(x, w)
+    if method == "auto":
+        direction = _monotone(x)
+        if direction:
+            return _exact_sorted(x, w, direction)
     reduced = _reduced_keys(x, "keys")
     bits = reduced[3]
     if bits == 0:
@@ -365,13 +400,15 @@ def _exact_entries(x, w, method="auto"):
         return _exact_count(x, w, reduced)
     if method == "radix":
         return _exact_radix(x, w, reduced)
-    # auto, from the measurements in benchmarks/README.md: few distinct values
-    # (spread over many key bits) -> buckets; weighted -> radix, which needs no
-    # argsort and copes with ties; unweighted -> radix for keys of at most 40
-    # significant bits (float32 data, rounded values), else np.sort
-    if _few_distinct(x):
+    # auto, from the measurements in benchmarks/README.md: data in order -> one
+    # pass (above); few distinct values spread over many key bits -> buckets;
+    # keys of at most 40 significant bits (float32 data, rounded values) ->
+    # radix; weighted with a heavy value -> radix (argsort slows down on ties);
+    # otherwise np.sort, or one sort of packed (key, row) integers when weighted
+    few, heavy = _sample_stats(x)
+    if few:
         return _exact_buckets(x, w)
-    if w is not None or bits <= 40:
+    if bits <= 40 or (w is not None and heavy):
         return _exact_radix(x, w, reduced)
     return _exact_sort(x, w)
 
@@ -508,9 +545,10 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
 
     Returns ``None`` when the caller should build the exact summary instead
     (and prune it): at most ``capacity + 1`` rows, one value, zero total
-    weight, a sample that is mostly repeats, or at most ``capacity + 1``
-    occupied first-level cells; the last two mean few distinct values, where
-    the exact methods are faster still and the summary may stay exact.  Otherwise returns ``(values, rmin, weight,
+    weight, data already in order (the exact summary is then one pass), a
+    sample that is mostly repeats, or at most ``capacity + 1`` occupied
+    first-level cells; the last two mean few distinct values, where the exact
+    methods are faster still and the summary may stay exact.  Otherwise returns ``(values, rmin, weight,
     total)`` of the entries: the minimum, the maximum and, for each target
     rank ``d = i * W / capacity`` (``0 < i < capacity``), the first value
     whose weight at or below reaches ``d``, each with its exact rank sums.
@@ -526,7 +564,7 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
     """
     n = x.shape[0]
     b = int(capacity)
-    if n <= b + 1 or _few_distinct(x):
+    if n <= b + 1 or _few_distinct(x) or _monotone(x):
         return None
     imin, imax = int(np.argmin(x)), int(np.argmax(x))
     if not x[imin] < x[imax]:
