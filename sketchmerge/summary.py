@@ -403,12 +403,15 @@ def _exact_entries(x, w, method="auto"):
     # auto, from the measurements in benchmarks/README.md: data in order -> one
     # pass (above); few distinct values spread over many key bits -> buckets;
     # keys of at most 40 significant bits (float32 data, rounded values) ->
-    # radix; weighted with a heavy value -> radix (argsort slows down on ties);
-    # otherwise np.sort, or one sort of packed (key, row) integers when weighted
+    # radix; weighted -> one sort of packed (key, row) integers when they fit
+    # 64 bits and no value is heavy, else radix (argsort is slower, and much
+    # slower on ties); unweighted -> np.sort
     few, heavy = _sample_stats(x)
     if few:
         return _exact_buckets(x, w)
-    if bits <= 40 or (w is not None and heavy):
+    if bits <= 40:
+        return _exact_radix(x, w, reduced)
+    if w is not None and (heavy or bits + max(1, (n - 1).bit_length()) > 64):
         return _exact_radix(x, w, reduced)
     return _exact_sort(x, w)
 
