@@ -198,6 +198,10 @@ def main(argv=None):
     with tempfile.TemporaryDirectory() as d:
         path = os.path.join(d, "unit.parquet")
         pq.write_table(pa.table({k: pa.array(v) for k, v in data.items()}), path)
+        whole = best({"all": lambda: [c.to_numpy() for c in pq.read_table(path, use_threads=False).columns]},
+                     args.reps)["all"]
+        print(f"\nParquet scan of the whole work unit ({len(data)} columns x {args.rows} rows, one read): "
+              f"{whole / (len(data) * args.rows) * 1e9:.1f} ns/value")
         rows = bench_construction(data, w, path, args.capacity, args.reps)
     full = columns(args.rows)
     bench_merge_query(full, w, args.capacity, max(3, args.reps // 3))
