@@ -38,9 +38,9 @@ filesystem instance (1-based, counted over the chosen operations), which does
 depend on call order across threads.
 
 Every setting is plain JSON (numbers, strings, lists), so the settings travel
-to Dask workers as ordinary storage options.  fsspec caches instances by their
-arguments: the same settings in one process give the same instance and share
-its call counters; :meth:`FaultyFileSystem.reset` starts them again.
+to Dask workers as ordinary storage options.  All instances with the same
+settings in one process (fsspec makes one per thread) share one set of call
+counters and statistics; :meth:`FaultyFileSystem.reset` starts them again.
 
 Examples
 --------
@@ -49,7 +49,7 @@ Examples
 >>> mem = fsspec.filesystem("memory")
 >>> mem.pipe_file("/fault-doc/a.bin", b"0123456789")
 >>> fs = fsspec.filesystem("faulty", target_protocol="memory", fail_calls=[1],
-...                        errors=["reset"], seed=7)
+...                        error_kinds=["reset"], seed=7)
 >>> try:
 ...     fs.cat_file("/fault-doc/a.bin")
 ... except ConnectionResetError as e:
@@ -67,6 +67,7 @@ import errno
 import fnmatch
 import hashlib
 import io
+import json
 import threading
 import time
 from typing import Any
@@ -98,10 +99,40 @@ _OPS = {
 }
 
 
+class _State:
+    """Call counters and statistics shared by the instances of one settings (per process)."""
+
+    def __init__(self):
+        self.lock = threading.Lock()
+        self.reset()
+
+    def reset(self) -> None:
+        with self.lock:
+            self.calls = 0
+            self.per_key: dict[tuple[str, str], int] = {}
+            self.stats = {"calls": 0, "faults": 0, "short_reads": 0, "truncations": 0, "permanent": 0}
+            self.log: list[tuple[int, str, str, str]] = []
+
+
+_STATES: dict[str, _State] = {}
+_STATES_LOCK = threading.Lock()
+
+
 def _u(seed: int, *parts: Any) -> float:
     """A uniform number in [0, 1) from the seed and the parts (stable across processes)."""
     h = hashlib.sha256("|".join([str(seed), *map(str, parts)]).encode()).digest()
     return int.from_bytes(h[:8], "little") / 2.0**64
+
+
+def _listed(v):
+    """A list setting given as a list, a single value, or comma-separated text."""
+    if v is None:
+        return None
+    if isinstance(v, str):
+        return [p for p in (x.strip() for x in v.split(",")) if p]
+    if isinstance(v, (int, float)):
+        return [v]
+    return list(v)
 
 
 def _make_error(kind: str, what: str) -> OSError:
@@ -134,8 +165,12 @@ class FaultyFileSystem(AbstractFileSystem):
     seed : int
         Seeds every decision.
     rate : float
-        Chance that a call raises a transient error (of a kind from ``errors``).
-    errors : list of str
+        Chance that a call raises a transient error (of a kind from ``error_kinds``).
+    List settings also accept one value or comma-separated text (as given by
+    ``--storage-option error_kinds=reset,timeout``).  (fsspec's ``url_to_fs``
+    keeps some option names for itself, ``errors`` among them, hence the names.)
+
+    error_kinds : list of str
         Kinds to choose from: ``"connection"`` (ConnectionError), ``"timeout"``
         (TimeoutError), ``"reset"`` (OSError ECONNRESET), ``"etimedout"``
         (OSError ETIMEDOUT), ``"hang"`` (sleep ``timeout_seconds``, then
@@ -171,18 +206,21 @@ class FaultyFileSystem(AbstractFileSystem):
     root_marker = ""
 
     def __init__(self, target_protocol: str = "file", target_options: dict | None = None, *,
-                 seed: int = 0, rate: float = 0.0, errors=None, fail_calls=(),
+                 seed: int = 0, rate: float = 0.0, error_kinds=None, fail_calls=(),
                  short_read_rate: float = 0.0, truncate_rate: float = 0.0, permanent=(),
                  permanent_error: str = "permission", truncated=(), ops=None,
                  max_faults: int | None = None, timeout_seconds: float = 0.05,
                  latency_seconds: float = 0.0, **kwargs):
         super().__init__(**kwargs)
+        # from the command line (--storage-option error_kinds=reset,timeout) lists arrive as text
+        error_kinds, ops, permanent, truncated, fail_calls = (
+            _listed(error_kinds), _listed(ops), _listed(permanent), _listed(truncated), _listed(fail_calls))
         if target_protocol == PROTOCOL:
             raise ValueError("target_protocol: expected another filesystem, got 'faulty'")
-        kinds = tuple(errors) if errors is not None else ERROR_KINDS
+        kinds = tuple(error_kinds) if error_kinds is not None else ERROR_KINDS
         bad = [k for k in kinds if k not in ERROR_KINDS]
         if bad or not kinds:
-            raise ValueError(f"errors: expected kinds from {list(ERROR_KINDS)}, got {list(kinds)}")
+            raise ValueError(f"error_kinds: expected kinds from {list(ERROR_KINDS)}, got {list(kinds)}")
         fams = tuple(ops) if ops is not None else OPERATIONS
         bad = [o for o in fams if o not in OPERATIONS]
         if bad:
@@ -209,18 +247,39 @@ class FaultyFileSystem(AbstractFileSystem):
         self.max_faults = None if max_faults is None else int(max_faults)
         self.timeout_seconds = float(timeout_seconds)
         self.latency_seconds = float(latency_seconds)
-        self._lock = threading.Lock()
-        self.reset()
+        # fsspec keeps one instance per thread: the counters live in one state per process
+        # and settings, so threads of one worker share them (and the N-th call is per process)
+        key = json.dumps([target_protocol, target_options, self.seed, self.rate, kinds,
+                          sorted(self.fail_calls), self.short_read_rate, self.truncate_rate,
+                          self.permanent, permanent_error, self.truncated, fams, self.max_faults,
+                          self.timeout_seconds, self.latency_seconds], sort_keys=True, default=str)
+        with _STATES_LOCK:
+            self._state = _STATES.get(key)
+            if self._state is None:
+                self._state = _STATES[key] = _State()
 
     # ------------------------------------------------------------------ bookkeeping
+    @property
+    def _lock(self) -> threading.Lock:
+        return self._state.lock
+
+    @property
+    def stats(self) -> dict[str, int]:
+        """Counts of ``calls``, ``faults`` (transient), ``short_reads``, ``truncations``, ``permanent``."""
+        return self._state.stats
+
+    @property
+    def log(self) -> list[tuple[int, str, str, str]]:
+        """The first 10,000 injected faults: (call number or -1, operation, path, kind)."""
+        return self._state.log
+
+    @property
+    def _per_key(self) -> dict[tuple[str, str], int]:
+        return self._state.per_key
+
     def reset(self) -> None:
         """Zero the call counters and statistics (fault decisions start again)."""
-        with self._lock:
-            self._calls = 0
-            self._per_key: dict[tuple[str, str], int] = {}
-            self.stats: dict[str, int] = {"calls": 0, "faults": 0, "short_reads": 0,
-                                          "truncations": 0, "permanent": 0}
-            self.log: list[tuple[int, str, str, str]] = []   # (call, op, path, kind)
+        self._state.reset()
 
     @classmethod
     def _strip_protocol(cls, path):
@@ -242,12 +301,13 @@ class FaultyFileSystem(AbstractFileSystem):
         return any(fnmatch.fnmatchcase(path, p) for p in patterns)
 
     def _tick(self, op: str, path: str) -> tuple[int, int]:
-        with self._lock:
-            self._calls += 1
-            self.stats["calls"] += 1
-            k = self._per_key.get((op, path), 0) + 1
-            self._per_key[(op, path)] = k
-            return self._calls, k
+        st = self._state
+        with st.lock:
+            st.calls += 1
+            st.stats["calls"] += 1
+            k = st.per_key.get((op, path), 0) + 1
+            st.per_key[(op, path)] = k
+            return st.calls, k
 
     def _record(self, n: int, op: str, path: str, kind: str, stat: str) -> None:
         with self._lock:
