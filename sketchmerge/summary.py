@@ -336,19 +336,19 @@ def _exact_buckets(x, w):
     return key_values(allk[o]), allw[o]
 
 
-def _sample_stats(x: np.ndarray) -> tuple[bool, bool]:
-    """``(few_distinct, heavy)`` from a strided sample of about 1024 rows: mostly
-    repeats (a hint of few distinct values), and one value holding 1/20 of it."""
+def _sample_stats(x: np.ndarray) -> tuple[bool, float, int]:
+    """``(few_distinct, top_share, bits)`` from a strided sample of about 1024 rows:
+    mostly repeats (a hint of few distinct values), the share of its most
+    frequent value, and its significant key bits, a lower bound on those of
+    the data (a wider span or fewer shared trailing zeros only add bits)."""
     sample = np.sort(x[:: max(1, x.shape[0] // 1024)])
+    bits = _reduce_keys(float_keys(sample))[2]
     starts = _run_starts(sample)
     if starts is None:
-        return False, False
+        return False, 1.0 / sample.shape[0], bits
     top = int(_run_lengths(starts, sample.shape[0]).max())
-    return starts.shape[0] * 4 <= sample.shape[0], top * 20 >= sample.shape[0]
+    return starts.shape[0] * 4 <= sample.shape[0], top / sample.shape[0], bits
 
-
-def _few_distinct(x: np.ndarray) -> bool:
-    return _sample_stats(x)[0]
 
 
 def _monotone(x: np.ndarray) -> int:
@@ -387,32 +387,50 @@ def _exact_entries(x, w, method="auto"):
     if method == "buckets":
         return _exact_buckets(x, w)
     if method == "auto":
-        direction = _monotone(x)
-        if direction:
-            return _exact_sorted(x, w, direction)
+        return _exact_auto(x, w)
     reduced = _reduced_keys(x, "keys")
     bits = reduced[3]
     if bits == 0:
         return key_values(reduced[1:2]), np.array([float(n) if w is None else float(w.sum())])
-    if method == "count" or (method == "auto" and (1 << bits) <= max(1 << 16, 2 * n)):
+    if method == "count":
         if bits > 26:
             raise ValueError(f"method 'count': expected at most 26 significant key bits, got {bits}")
         return _exact_count(x, w, reduced)
-    if method == "radix":
-        return _exact_radix(x, w, reduced)
-    # auto, from the measurements in benchmarks/README.md: data in order -> one
-    # pass (above); few distinct values spread over many key bits -> buckets;
-    # keys of at most 40 significant bits (float32 data, rounded values) ->
-    # radix; weighted -> one sort of packed (key, row) integers when they fit
-    # 64 bits and no value is heavy, else radix (argsort is slower, and much
-    # slower on ties); unweighted -> np.sort
-    few, heavy = _sample_stats(x)
-    if few:
-        return _exact_buckets(x, w)
-    if bits <= 40:
-        return _exact_radix(x, w, reduced)
-    if w is not None and (heavy or bits + max(1, (n - 1).bit_length()) > 64):
-        return _exact_radix(x, w, reduced)
+    return _exact_radix(x, w, reduced)
+
+
+def _exact_auto(x, w):
+    """The fastest exact method for the input, chosen from the measurements in
+    benchmarks/README.md:
+
+    * data already in order: one pass;
+    * keys of few significant bits (small integers, codes, flags): counting;
+    * few distinct values spread over many key bits: buckets;
+    * keys of at most 40 significant bits (float32 data, rounded values): radix;
+    * weighted: one sort of packed (key, row) integers when they fit 64 bits
+      and no value is heavy, else radix (argsort is slower, much slower on ties);
+    * otherwise np.sort.
+
+    A strided sample decides most of this without touching every row.
+    """
+    n = x.shape[0]
+    direction = _monotone(x)
+    if direction:
+        return _exact_sorted(x, w, direction)
+    few, top, sample_bits = _sample_stats(x)
+    heavy = top >= 0.05
+    reduced = None
+    if sample_bits <= 40 or few or w is not None:
+        reduced = _reduced_keys(x, "keys")
+        bits = reduced[3]
+        if bits == 0:
+            return key_values(reduced[1:2]), np.array([float(n) if w is None else float(w.sum())])
+        if (1 << bits) <= max(1 << 16, 2 * n):
+            return _exact_count(x, w, reduced)
+        if few:
+            return _exact_buckets(x, w)
+        if bits <= 40 or (w is not None and (heavy or bits + max(1, (n - 1).bit_length()) > 64)):
+            return _exact_radix(x, w, reduced)
     return _exact_sort(x, w)
 
 
@@ -567,7 +585,10 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
     """
     n = x.shape[0]
     b = int(capacity)
-    if n <= b + 1 or _few_distinct(x) or _monotone(x):
+    if n <= b + 1 or _monotone(x):
+        return None
+    few, top, _ = _sample_stats(x)
+    if few or (w is None and top >= 0.5):  # np.sort is quick when one value dominates
         return None
     imin, imax = int(np.argmin(x)), int(np.argmax(x))
     if not x[imin] < x[imax]:
