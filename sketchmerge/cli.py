@@ -25,6 +25,7 @@ import argparse
 import json
 import logging
 import math
+import os
 import sys
 
 from . import __version__
@@ -375,41 +376,82 @@ def _exit_code(e: BaseException) -> int:
     return EXIT_CODES["internal"]
 
 
+class _Scrub(logging.Filter):
+    """Replace credential values in every record a handler emits: with --debug, library
+    loggers print request headers (botocore's carry the access key id)."""
+
+    def __init__(self, secrets: tuple[str, ...]):
+        super().__init__()
+        self.secrets = secrets
+
+    def _clean(self, text: str) -> str:
+        for s in self.secrets:
+            text = text.replace(s, "***")
+        return text
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if self.secrets:
+            msg = record.getMessage()
+            clean = self._clean(msg)
+            if clean != msg:
+                record.msg, record.args = clean, ()
+            if record.exc_info and not record.exc_text:
+                record.exc_text = logging.Formatter().formatException(record.exc_info)
+            if record.exc_text:
+                record.exc_text = self._clean(record.exc_text)
+        return True
+
+
+def _credentials(so: dict) -> tuple[str, ...]:
+    """Values to keep out of every output: credential-like storage options and environment."""
+    from .sources import _SECRET_KEY, _secret_values
+
+    env = [v for k, v in os.environ.items() if _SECRET_KEY.search(k) and len(v) >= 8]
+    return tuple(sorted(set(_secret_values(so)) | set(env), key=len, reverse=True))
+
+
 def main(argv=None) -> int:
     """Entry point of the ``sketchmerge`` console script."""
     parser = make_parser()
     args = parser.parse_args(argv)
+    try:
+        so = parse_storage_options(args.storage_option)
+    except argparse.ArgumentTypeError as e:
+        parser.error(str(e))
+    scrub = _Scrub(_credentials(so))
     level = logging.DEBUG if args.debug else logging.WARNING if args.quiet else logging.INFO
     # our own handler on our own logger: library loggers (distributed, fsspec...) stay quiet
     # unless --debug, and their records never reach stdout
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(logging.Formatter("sketchmerge: %(message)s"))
+    handler.addFilter(scrub)
     ours = logging.getLogger("sketchmerge")
     ours.handlers[:] = [handler]
     ours.propagate = False
     ours.setLevel(level)
     if args.debug:
         logging.basicConfig(level=logging.DEBUG, stream=sys.stderr)
+        for h in logging.getLogger().handlers:
+            h.addFilter(scrub)
     else:
         for noisy in ("distributed", "asyncio", "fsspec", "s3fs", "botocore", "aiobotocore", "tornado"):
             logging.getLogger(noisy).setLevel(logging.ERROR)
-    try:
-        so = parse_storage_options(args.storage_option)
-    except argparse.ArgumentTypeError as e:
-        parser.error(str(e))
     try:
         return _COMMANDS[args.command](args, so)
     except KeyboardInterrupt:
         print("sketchmerge: interrupted", file=sys.stderr)
         return 130
     except Exception as e:  # one clear line; a traceback only with --debug
-        if args.debug:
-            raise
         from .sources import redact
 
         code = _exit_code(e)
+        if args.debug:
+            import traceback
+
+            sys.stderr.write(redact(scrub._clean(traceback.format_exc())))
+            return code
         kind = "internal error" if code == 1 else "error"
-        msg = redact(str(e))
+        msg = redact(str(e), scrub.secrets)
         print(f"sketchmerge: {kind}: {msg}", file=sys.stderr)
         if code == 1:
             print("sketchmerge: this is a bug; rerun with --debug for the traceback", file=sys.stderr)
