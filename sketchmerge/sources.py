@@ -1081,6 +1081,14 @@ def _units_of(fi: _FileInfo, plan: _FilePlan, budget: int) -> list[Unit]:
 
 # --------------------------------------------------------------------------- open_dataset
 
+def _has_userinfo(url: str) -> bool:
+    """Whether a ``scheme://`` URL carries ``user[:password]@`` before its first slash."""
+    if "://" not in url:
+        return False
+    authority = url.split("://", 1)[1].split("/", 1)[0]
+    return "@" in authority
+
+
 def _resolve(source: str, storage_options: dict | None):
     import fsspec
 
@@ -1097,7 +1105,9 @@ def _resolve(source: str, storage_options: dict | None):
     except (ImportError, ValueError) as e:
         raise InputError(f"{shown}: expected a known fsspec protocol, got {given!r} "
                          f"({redact(str(e), secrets)})") from None
-    if cls._get_kwargs_from_urls(source):
+    if cls._get_kwargs_from_urls(source) or (given not in ("http", "https") and _has_userinfo(source)):
+        # object stores take "key:secret@" for part of the bucket name, and the storage
+        # error quoting that name would print the (URL-quoted) secret
         raise InputError(f"{shown}: expected connection settings and credentials in "
                          "storage_options or the environment, got them inside the URL")
     protocol = _canonical_protocol(cls, given)
