@@ -1380,8 +1380,14 @@ def _read_parquet(f, unit: Unit, cols: list[str], where: str, remote: bool):
     rows = int(sum(pf.metadata.row_group(i).num_rows for i in unit.parts))
     if not present or not unit.parts:
         return {}, rows
-    table = pf.read_row_groups(list(unit.parts), columns=present, use_threads=False)
-    return {c: table.column(c) for c in present}, rows
+    parts = list(unit.parts)
+
+    def column(c):
+        return pf.read_row_groups(parts, columns=[c], use_threads=False).column(0)
+
+    # one column at a time (read_unit calls these in turn): Arrow then holds one decoded
+    # column of the unit while its numpy array is filled, instead of every selected column
+    return {c: (lambda c=c: column(c)) for c in present}, rows
 
 
 def _read_arrow(f, unit: Unit, cols: list[str], where: str, size: int):
@@ -1575,7 +1581,8 @@ def read_unit(unit: Unit, columns: list[str], *, protocol: str,
                         raw, rows = _read_arrow(f, unit, cols, where, size)
                     arrays = {}
                     for c in list(raw):   # pop as we go: one source column alive at a time
-                        arrays[c], kinds[c] = _float64(raw.pop(c), c, where)
+                        col = raw.pop(c)
+                        arrays[c], kinds[c] = _float64(col() if callable(col) else col, c, where)
     except Exception as e:  # noqa: BLE001 - translated at the storage boundary
         _data_error(e, where, secrets)
 
