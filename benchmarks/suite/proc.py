@@ -1,7 +1,7 @@
 """Whole-process measurements: wall time, CPU time and peak resident memory of a child.
 
-``os.wait4`` returns the child's own resource usage, so CPU seconds and peak RSS are
-those of that one process (with its threads), not of the benchmark driver.
+CPU seconds and peak RSS are those of the one measured process (with its threads), taken
+from ``getrusage(RUSAGE_CHILDREN)`` in a small launcher, not of the benchmark driver.
 """
 
 from __future__ import annotations
@@ -9,7 +9,6 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
-import time
 from dataclasses import dataclass
 
 HERE = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))   # benchmarks/
@@ -23,24 +22,36 @@ class Run:
     stdout: str
 
 
+# Linux keeps a process's peak RSS across exec, and a fresh child starts from a copy of
+# its parent's memory map: a child of a big benchmark driver would report the driver's
+# peak as its own.  So every measured command runs under this small launcher, whose own
+# children start from its small map; it reports their usage on its last stderr line.
+_LAUNCHER = """\
+import resource, subprocess, sys, time
+t = time.perf_counter()
+rc = subprocess.call(sys.argv[1:])
+wall = time.perf_counter() - t
+u = resource.getrusage(resource.RUSAGE_CHILDREN)
+sys.stderr.write("\\n@@usage %r %r %r\\n" % (wall, u.ru_utime + u.ru_stime, u.ru_maxrss))
+sys.exit(rc)
+"""
+
+
 def run(cmd: list[str], timeout: float = 900.0, env: dict | None = None) -> Run:
     """Run ``cmd`` to completion; raise RuntimeError (with its stderr) when it fails."""
     e = dict(os.environ)
     e["PYTHONPATH"] = HERE + os.pathsep + e.get("PYTHONPATH", "")
     e.setdefault("PYTHONHASHSEED", "0")
     e.update(env or {})
-    t0 = time.perf_counter()
-    p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=e)
-    # read both pipes to the end, then reap with wait4 (communicate() would reap it
-    # without its resource usage)
+    p = subprocess.Popen([sys.executable, "-c", _LAUNCHER, *cmd], stdout=subprocess.PIPE,
+                         stderr=subprocess.PIPE, env=e)
     out, err = _drain(p, timeout)
-    _, status, usage = os.wait4(p.pid, 0)
-    wall = time.perf_counter() - t0
-    p.returncode = os.waitstatus_to_exitcode(status)
+    p.wait(timeout)
     if p.returncode != 0:
         raise RuntimeError(f"{' '.join(cmd[:4])}...: exit {p.returncode}\n{err[-3000:]}")
-    return Run(wall=wall, cpu=usage.ru_utime + usage.ru_stime, rss_mb=usage.ru_maxrss / 1024.0,
-               stdout=out)
+    last = [ln for ln in err.splitlines() if ln.startswith("@@usage ")][-1].split()
+    wall, cpu, rss_kb = float(last[1]), float(last[2]), float(last[3])
+    return Run(wall=wall, cpu=cpu, rss_mb=rss_kb / 1024.0, stdout=out)
 
 
 def _drain(p: subprocess.Popen, timeout: float) -> tuple[str, str]:
