@@ -48,7 +48,7 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["Summary", "exact_entries", "check_values", "check_weights"]
+__all__ = ["Summary", "check_values", "check_weights", "exact_entries", "pruned_entries", "release_scratch"]
 
 _F8 = np.float64
 _MAX_EXACT_INT = 2**53
@@ -117,8 +117,9 @@ def check_weights(weights, n: int, name: str = "weights") -> np.ndarray:
 # a dominant cost at work-unit sizes: the first touch of every 4 KiB page of
 # a new array faults, which can cost more than the arithmetic on it.  So the
 # per-row temporaries live in per-thread scratch buffers reused from call to
-# call (about 40 bytes per row of the largest input seen, at most 1M rows per
-# buffer; larger inputs allocate), and only arrays a summary keeps are fresh.
+# call (up to about 80 bytes per row of the largest input seen, at most 2**20
+# rows per buffer, larger inputs allocate; release_scratch() frees them), and
+# only arrays a summary keeps are allocated fresh.
 # ---------------------------------------------------------------------------
 _SIGN = np.int64(-(2**63))
 _LOW63 = np.int64(2**63 - 1)
@@ -131,6 +132,17 @@ _SCRATCH_MAX = 1 << 20  # scratch buffers up to this many elements are kept per 
 EXACT_METHODS = ("auto", "sort", "count", "radix", "buckets")
 
 _tls = threading.local()
+
+
+def release_scratch() -> None:
+    """Free the calling thread's construction scratch buffers.
+
+    Construction keeps per-thread scratch buffers between calls (up to about
+    80 bytes per row of the largest input seen, at most 2**20 rows per
+    buffer) because fresh memory costs page faults on every call; a thread
+    that is done building summaries can give that memory back.
+    """
+    _tls.bufs = {}
 
 
 def _scratch(slot: str, n: int, dtype) -> np.ndarray:

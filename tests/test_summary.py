@@ -549,6 +549,7 @@ def test_random_merge_trees_keep_their_certified_bound(tree):
             # rounding only ever widens the bounds
             assert np.all(t.rmin <= s.rmin) and np.all(t.rmax >= s.rmax) and np.all(t.weights <= s.weights)
             np.testing.assert_array_equal(t.values, s.values)
+            assert Summary.from_bytes(t.to_bytes()) == t  # a decoded summary round-trips exactly
             s = t
         nodes.append(s)
         if i > 40:
@@ -656,3 +657,13 @@ def test_capacity_refinement_levels(dist, monkeypatch, always_direct):
     for b in (7, 300, 3000):
         assert Summary.from_values(x, w, capacity=b) == Summary.from_values(x, w).prune(b)
         assert Summary.from_values(x, capacity=b) == Summary.from_values(x).prune(b)
+
+
+def test_release_scratch_keeps_results_and_frees_buffers():
+    from sketchmerge.summary import release_scratch
+
+    r = rng(40)
+    x = r.normal(size=200_000)
+    a = Summary.from_values(x, capacity=1000)
+    release_scratch()
+    assert Summary.from_values(x, capacity=1000) == a
