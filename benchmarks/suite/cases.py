@@ -241,9 +241,36 @@ def memory(cfg: Config, p: Paths) -> dict:
         unit_rows = rows or max(1, rep["rows"] // rep["partitions_total"])
         decoded = unit_rows * ncols * 8 / 2**20
         excess = r.rss_mb - base.rss_mb
+        # O(features / eps): a summary of each feature at up to 8 x the leaf capacity (a node
+        # of depth 7), 4 float64 arrays per entry
+        summaries = len(FEATS) * 8 * (8 * cfg.bins + 1) * 32 / 2**20
         out["cases"][name] = dict(_run_dict(r), units=rep["partitions_total"], unit_rows=unit_rows,
                                   unit_decoded_mb=round(decoded, 1), excess_mb=round(excess, 1),
-                                  excess_over_unit=round(excess / decoded, 2))
+                                  excess_over_unit=round(excess / decoded, 2),
+                                  allowance_mb=round(2 * decoded + summaries, 1))
+    # a worker process of its own (no scheduler, driver or other worker in it): its peak
+    # less its peak on a 1,000-row build
+    def worker(folder, budget):
+        r = proc.run(proc.python("-m", "suite.tasks", "worker", folder,
+                                 _fresh(os.path.join(p.work, "mem-worker")), W, str(budget)))
+        return json.loads(r.stdout.strip().splitlines()[-1])
+
+    wbase = worker(p.tiny, 0)["worker_rss_kb"] / 1024
+    out["worker_baseline_mb"] = round(wbase, 1)
+    out["worker"] = {}
+    for name, budget, rows in (("default_units", 0, None), ("rowgroup_units", 1, cfg.row_group)):
+        got = worker(p.main, budget)
+        unit_rows = rows or max(1, got["rows"] // got["units"])
+        decoded = unit_rows * ncols * 8 / 2**20
+        summaries = len(FEATS) * 8 * (8 * cfg.bins + 1) * 32 / 2**20
+        peak = got["worker_rss_kb"] / 1024
+        out["worker"][name] = {"rss_mb": round(peak, 1), "excess_mb": round(peak - wbase, 1),
+                               "unit_rows": unit_rows, "unit_decoded_mb": round(decoded, 1),
+                               "excess_over_unit": round((peak - wbase) / decoded, 2),
+                               "allowance_mb": round(2 * decoded + summaries, 1),
+                               "units": got["units"]}
+        if not cfg.extras:
+            break
     # the same per-unit size, many more units: peak memory must not grow with the unit count
     grow = {}
     for units in (cfg.many_units if cfg.extras else ()):

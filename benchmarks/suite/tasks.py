@@ -6,6 +6,8 @@
                         (unweighted: it takes no weights and states no error bound).
 ``exact DIR COLS W Q OUT``  numpy's exact weighted ``quantile`` (``inverted_cdf``) of every
                         column, all rows in memory; W is the weight column.
+``worker DIR TABLE W BUDGET``  a build on a one-worker, one-thread process cluster; prints
+                        the worker process's own peak RSS.
 Results go to OUT as ``.npz`` (one array per column).
 """
 
@@ -59,12 +61,37 @@ def exact_quantile(folder: str, cols: list[str], weight: str, bins: int, out: st
     np.savez(out, **res)
 
 
+def worker_peak(folder: str, table: str, weight: str, byte_budget: int) -> None:
+    """Build on a one-process, one-thread local cluster; print the worker's peak RSS (kB)."""
+    import json
+    import resource
+
+    from distributed import Client, LocalCluster
+
+    import sketchmerge
+
+    cluster = LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
+                           dashboard_address=None, silence_logs=50)
+    client = Client(cluster)
+    try:
+        rep = sketchmerge.build(folder, table, client=client, weight_column=weight,
+                                byte_budget=byte_budget or None, full=True)
+        peak = client.run(lambda: resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
+    finally:
+        client.close()
+        cluster.close()
+    print(json.dumps({"worker_rss_kb": max(peak.values()), "units": rep["partitions_total"],
+                      "rows": rep["rows"]}))
+
+
 def main(argv: list[str]) -> None:
     name, folder, cols = argv[0], argv[1], argv[2].split(",")
     if name == "scan":
         scan(folder, cols)
     elif name == "dask":
         dask_quantile(folder, cols, int(argv[3]), argv[4])
+    elif name == "worker":
+        worker_peak(folder, argv[2], argv[3], int(argv[4]))
     elif name == "exact":
         exact_quantile(folder, cols, argv[3], int(argv[4]), argv[5])
     else:
