@@ -426,9 +426,19 @@ def main(argv=None) -> int:
     handler.setFormatter(logging.Formatter("sketchmerge: %(message)s"))
     handler.addFilter(scrub)
     ours = logging.getLogger("sketchmerge")
+    saved = (ours.handlers[:], ours.propagate, ours.level)
     ours.handlers[:] = [handler]
     ours.propagate = False
     ours.setLevel(level)
+    try:
+        return _run(args, so, scrub)
+    finally:  # main() may run in-process (tests, notebooks): leave our logger as it was
+        ours.handlers[:] = saved[0]
+        ours.propagate = saved[1]
+        ours.setLevel(saved[2])
+
+
+def _run(args, so, scrub) -> int:
     if args.debug:
         logging.basicConfig(level=logging.DEBUG, stream=sys.stderr)
         for h in logging.getLogger().handlers:
