@@ -37,8 +37,8 @@ def test_quick_run_writes_its_table_chart_and_figures(quick):
     assert md.startswith("# sketchmerge benchmark results (quick mode)")
     assert "| goal | measured | target | status |" in md
     for row in ("weighted build / pyarrow scan, wall", "speed-up over dask.dataframe quantile",
-                "peak RSS, 1 worker thread", "build time vs rows", "merge CPU per unit",
-                "refresh, 1 new unit", "embedded default", "## Cost model"):
+                "peak RSS of a worker process", "peak RSS, embedded build", "build time vs rows",
+                "merge CPU per unit", "refresh, 1 new unit", "embedded default", "## Cost model"):
         assert row in md, row
     png = (quick / "chart.png").read_bytes()
     assert png[:8] == b"\x89PNG\r\n\x1a\n"   # the PNG signature (PNG specification, 5.2)
