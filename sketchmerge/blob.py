@@ -242,7 +242,8 @@ def _array(p: dict, key: str, tkey: str, n: int, what: str) -> np.ndarray:
     b = p[key]
     if len(b) != n * dt.itemsize:
         raise FormatError(f"{what}: expected {n * dt.itemsize} bytes for {key!r} ({n} x {t}), got {len(b)}")
-    return np.frombuffer(b, dtype=dt).astype(np.float64)
+    with np.errstate(invalid="ignore"):  # a signalling NaN in float32 bytes is caught below, not warned
+        return np.frombuffer(b, dtype=dt).astype(np.float64)
 
 
 def _finite_nonneg(a: np.ndarray) -> bool:

@@ -316,7 +316,16 @@ def redact_url(url: str) -> str:
         return url
     parts = urllib.parse.urlsplit(url)
     netloc = parts.netloc.rsplit("@", 1)[-1]
-    return urllib.parse.urlunsplit((parts.scheme, netloc, parts.path, "", ""))
+    return _join_url(parts.scheme, netloc, parts.path)
+
+
+def _join_url(scheme: str, netloc: str, path: str) -> str:
+    """``scheme://netloc/path``, keeping the ``//`` of an empty authority.
+
+    ``urllib.parse.urlunsplit`` drops it for schemes it does not know (``memory:///t``
+    would become ``memory:/t``, which fsspec then opens as a local relative folder).
+    """
+    return f"{scheme}://{netloc}{path}"
 
 
 def _collect_secrets(options, out: set[str], depth: int = 0) -> None:
@@ -791,7 +800,7 @@ class TableStore:
                     hidden.update({value, urllib.parse.unquote(value)})
             # a table root is a prefix: a query string means nothing to it and
             # may carry a signed token, so it is dropped from what is opened too
-            open_url = urllib.parse.urlunsplit((parts.scheme, parts.netloc, parts.path, "", ""))
+            open_url = _join_url(parts.scheme, parts.netloc, parts.path)
             if parts.scheme in ("s3", "s3a") and parts.username:
                 options.setdefault("key", urllib.parse.unquote(parts.username))
                 if parts.password:

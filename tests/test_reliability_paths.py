@@ -127,9 +127,6 @@ def test_relative_table_urls_resolve_inside_the_working_folder(tmp_path, monkeyp
     assert TableStore(str(cwd / "t")).versions() == [1]
 
 
-@pytest.mark.xfail(strict=True, reason="store.py rebuilds a scheme://path URL with urlunsplit, which drops the "
-                                       "'//' of an empty authority: 'memory:///t' is opened as the local "
-                                       "relative folder 'memory:/t' in the working directory (outside TABLE)")
 @pytest.mark.parametrize("url", ["memory:///reliability-t", "memory:///reliability-t/sub"])
 def test_empty_authority_urls_do_not_become_local_folders(tmp_path, monkeypatch, memfs, url):
     monkeypatch.chdir(tmp_path)
