@@ -401,7 +401,8 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
     previous = None
     if current is not None:
         try:
-            previous = decode_table(store.read_version(current)[1])
+            current_doc = store.read_version(current)[1]
+            previous = decode_table(current_doc)
         except FormatError as e:
             log.warning("current version %s of %s is unreadable (%s); building in full", current, store.url, e)
 
@@ -486,6 +487,15 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
         version = _publish(store, feats, content, previous, units, plan, o)
     else:
         version = current
+        # a publisher killed after its commit point can leave the pointer behind and its
+        # manifest unpromoted (docs/STORE.md, "A killed writer"); with nothing to publish,
+        # nothing else would repair them. Publishing the same bytes again is a no-op that
+        # only moves a lagging pointer forward. Housekeeping never fails the run.
+        try:
+            store.publish(current, current_doc, plan.all_keys())
+            store.clean_leftovers(older_than_seconds=float(config.get("gc_grace_seconds")))
+        except Exception as e:  # noqa: BLE001
+            log.warning("housekeeping of %s failed: %s", store.url, e)
     report.update(version=version, changed=changed)
     if previous is not None and changed:
         try:
