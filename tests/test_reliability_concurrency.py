@@ -14,7 +14,9 @@ large, so gc keeps every version), and after each trial:
 * every blob that a kept manifest names exists (the gc of one builder never
   removes what another's version needs).
 
-Local disk (3 trials in CI, 20 with ``-m slow``) and the S3-compatible server.
+Every other trial the builders meet at a barrier just before their first publish, so
+they all race for the same version number.  Local disk (3 trials in CI, 20 with
+``-m slow``) and the S3-compatible server (2 and 10).
 """
 
 from __future__ import annotations
@@ -57,9 +59,32 @@ def _opts(s3):
             "--storage-option", "client_kwargs.region_name=us-east-1"]
 
 
-def _trial(src, table, bins_list, s3):
-    procs = [subprocess.Popen([sys.executable, "-m", "sketchmerge.cli", "build", src, "--out", table,
-                               "--bins", str(b), "--workers", "1", "--keep", "100000", "--json", *_opts(s3)],
+# the build command; with a barrier folder, every builder waits at its first publish until
+# all have arrived, so that they race for the same version number
+RUNNER = r"""
+import os, sys, time
+barrier, n = sys.argv[1], int(sys.argv[2])
+if barrier:
+    from sketchmerge import store as S
+    publish, first = S.TableStore.publish, [True]
+    def waiting(self, *a, **k):
+        if first[0]:
+            first[0] = False
+            open(os.path.join(barrier, str(os.getpid())), "w").close()
+            t0 = time.time()
+            while len(os.listdir(barrier)) < n and time.time() - t0 < 120:
+                time.sleep(0.002)
+        return publish(self, *a, **k)
+    S.TableStore.publish = waiting
+from sketchmerge.cli import main
+sys.exit(main(sys.argv[3:]))
+"""
+
+
+def _trial(src, table, bins_list, s3, barrier=""):
+    procs = [subprocess.Popen([sys.executable, "-c", RUNNER, barrier, str(len(bins_list)), "build", src, "--out",
+                               table, "--bins", str(b), "--workers", "1", "--keep", "100000", "--json",
+                               *_opts(s3)],
                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
              for b in bins_list]
     return [(b, p.returncode, o, e) for b, p, (o, e) in
@@ -91,7 +116,7 @@ def _check(table, s3, won: dict[int, int]):
     return vs
 
 
-def _run(src, table, trials, seed, s3=None):
+def _run(src, table, trials, seed, s3=None, barrier_root=None):
     rng = random.Random(seed)
     won: dict[int, int] = {}
     codes, races, sizes = [], 0, []
@@ -99,7 +124,11 @@ def _run(src, table, trials, seed, s3=None):
         n = rng.randint(2, 4)
         sizes.append(n)
         bins_list = [8 + 16 * t + 4 * i for i in range(n)]           # unique per builder and trial
-        for b, code, out, err in _trial(src, table, bins_list, s3):
+        barrier = ""
+        if barrier_root is not None and t % 2 == 1:                  # every other trial: a real race
+            barrier = str(barrier_root / f"barrier{t}")
+            os.makedirs(barrier)
+        for b, code, out, err in _trial(src, table, bins_list, s3, barrier):
             codes.append(code)
             assert code in (0, RACE), err[-3000:]
             races += err.count("published by another builder")
@@ -111,32 +140,35 @@ def _run(src, table, trials, seed, s3=None):
             else:
                 assert "race" in err or "another builder" in err
         _check(table, s3, won)
-    print(f"concurrent builders ({'s3' if s3 else 'local'}): {trials} trials of {sizes} builders; "
+    print(f"concurrent builders ({'s3' if s3 else 'local'}): {trials} trials of {sizes} builders "
+          f"({'every other one' if barrier_root else 'none'} meeting at a barrier before publish); "
           f"{codes.count(0)} published, {codes.count(RACE)} exited {RACE} (lost every attempt), "
           f"{races} lost races republished on top; history v1..v{len(won)} consistent")
 
 
 def test_concurrent_builders_local(tmp_path):
     _data(str(tmp_path / "src"))
-    _run(str(tmp_path / "src"), str(tmp_path / "table"), trials=3, seed=1)
+    _run(str(tmp_path / "src"), str(tmp_path / "table"), trials=3, seed=1, barrier_root=tmp_path)
 
 
-def test_concurrent_builders_s3(s3_options, s3_bucket):
+def test_concurrent_builders_s3(s3_options, s3_bucket, tmp_path):
     import s3fs
 
     _data(f"{s3_bucket}/src", s3fs.S3FileSystem(**s3_options))
-    _run(f"s3://{s3_bucket}/src", f"s3://{s3_bucket}/table", trials=1, seed=2, s3=s3_options)
+    _run(f"s3://{s3_bucket}/src", f"s3://{s3_bucket}/table", trials=2, seed=2, s3=s3_options,
+         barrier_root=tmp_path)
 
 
 @pytest.mark.slow
 def test_concurrent_builders_local_many(tmp_path):
     _data(str(tmp_path / "src"))
-    _run(str(tmp_path / "src"), str(tmp_path / "table"), trials=20, seed=3)
+    _run(str(tmp_path / "src"), str(tmp_path / "table"), trials=20, seed=3, barrier_root=tmp_path)
 
 
 @pytest.mark.slow
-def test_concurrent_builders_s3_many(s3_options, s3_bucket):
+def test_concurrent_builders_s3_many(s3_options, s3_bucket, tmp_path):
     import s3fs
 
     _data(f"{s3_bucket}/src", s3fs.S3FileSystem(**s3_options))
-    _run(f"s3://{s3_bucket}/src", f"s3://{s3_bucket}/table", trials=10, seed=4, s3=s3_options)
+    _run(f"s3://{s3_bucket}/src", f"s3://{s3_bucket}/table", trials=10, seed=4, s3=s3_options,
+         barrier_root=tmp_path)

@@ -198,3 +198,32 @@ def test_task_keys_reports_and_exceptions_hold_no_credential(creds, bucket, clus
         with pytest.raises(SketchmergeError) as ei:
             f()
         assert leaks(_chain(ei.value)) == [], (i, _chain(ei.value)[:2000])
+
+
+def test_info_logs_hold_no_data_values(tmp_path):
+    """A cut table holds exact data values; the logs of a build at info level must not.
+
+    The data has distinctive values (its minimum, maximum and a point mass); stderr of
+    a default (info-level) build is scanned for them in the usual float
+    spellings.  The JSON report on stdout does carry min and max: it describes the table.
+    """
+    src = tmp_path / "src"
+    r = np.random.default_rng(12)
+    values = {"min": -7331.0625, "max": 98765.4321, "mass": 4242.4375}
+    for day in range(2):
+        x = r.uniform(-7000, 90000, 5000)
+        x[:300] = values["mass"]
+        x[-1] = values["min"] if day == 0 else values["max"]
+        d = src / f"day={day}"
+        d.mkdir(parents=True)
+        pq.write_table(pa.table({"x": x, "k": r.integers(100000, 100009, 5000)}), str(d / "p.parquet"))
+    spellings = {s for v in values.values() for s in (repr(v), str(v), f"{v:g}", f"{v:.6g}", f"{v:.4f}",
+                                                       f"{v:,.2f}", f"{v:.3e}")} | {"100000", "100008"}
+    p = subprocess.run([sys.executable, "-m", "sketchmerge.cli", "build", str(src), "--out",
+                        str(tmp_path / "t"), "--workers", "1", "--bins", "32"],
+                       capture_output=True, text=True, timeout=300)
+    assert p.returncode == 0, p.stderr
+    runs = [p.stderr]
+    assert sketchmerge.load(str(tmp_path / "t")).edges("x")[-1] == values["max"]   # they are in the table
+    for err in runs:
+        assert [s for s in spellings if s in err] == [], err
