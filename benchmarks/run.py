@@ -26,7 +26,7 @@ sys.path.insert(0, HERE)
 from suite import cases, model, report  # noqa: E402
 
 SECTIONS = ("per_unit", "whole_process", "versus_dask", "memory", "growth", "refresh",
-            "merges", "refresh_path", "startup", "model")
+            "merges", "refresh_path", "startup", "model", "profile")
 
 
 def _load() -> str:
@@ -89,6 +89,9 @@ def main(argv=None) -> int:
         step("merges", lambda: cases.merges(cfg, paths))
         step("refresh_path", lambda: cases.refresh_path(cfg, paths))
         step("startup", lambda: cases.startup(cfg, paths))
+        if not cfg.quick:
+            os.makedirs(args.out, exist_ok=True)
+            step("profile", lambda: cases.profile(cfg, paths, os.path.join(args.out, "profile.txt")))
         if "model" in want and "per_unit" in res and "merges" in res:
             k = model.fit(res, cfg.bins)
             res["model"] = {"constants": k, "checks": model.checks(k, res, cfg.bins),

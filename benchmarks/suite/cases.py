@@ -589,3 +589,57 @@ def startup(cfg: Config, p: Paths) -> dict:
         b = proc.best(runs)
         kinds[name] = dict(_run_dict(b), ready_s=round(float(b.stdout.strip().splitlines()[0]), 3))
     return {"rows": cfg.small_rows, "build": _run_dict(r), "cluster_kinds": kinds}
+
+
+# --------------------------------------------------------------------------- profile
+def profile(cfg: Config, p: Paths, out_path: str) -> dict:
+    """pyinstrument profile of the sketch task over a few units (one thread), if installed.
+
+    Writes the call tree to ``out_path``; returns the share of the task's time spent in
+    each of its steps (read, summaries, encode, store).
+    """
+    try:
+        from pyinstrument import Profiler
+    except ImportError:
+        return {"skipped": "pyinstrument is not installed"}
+    from sketchmerge import job
+    from sketchmerge.sources import open_dataset
+    from sketchmerge.tree import capacities
+
+    ds = open_dataset(p.main, byte_budget=1)
+    units = list(ds.units[:8])
+    leaf_cap, _ = capacities(1.0 / (8 * cfg.bins), 0)
+    spec = job.BuildSpec(features=tuple(FEATS), weight_column=W, hessian=None,
+                         prediction_column=None, prediction_scale=None, missing_weight="error",
+                         leaf_capacity=leaf_cap, protocol="file",
+                         dtypes=tuple((f, "float64") for f in FEATS),
+                         table_url=_fresh(os.path.join(p.work, "profile-table")))
+    job.sketch_unit(units[0], spec, f"{0:064x}")   # warm: imports, scratch buffers
+    prof = Profiler(interval=0.0005)
+    prof.start()
+    for i, u in enumerate(units):
+        job.sketch_unit(u, spec, f"{i + 1:064x}")
+    session = prof.stop()
+    text = prof.output_text(unicode=False, color=False, show_all=False)
+    # no machine paths in a committed file: paths relative to the repository
+    repo = os.path.dirname(proc.HERE) + os.sep
+    text = "\n".join(line for line in text.replace(repo, "").splitlines()
+                     if not line.startswith(("Profile at ", "  _ ", " /_", "/ ")))
+    with open(out_path, "w") as f:
+        f.write(text)
+    total = session.duration
+    shares = {}
+    root = session.root_frame()
+
+    def walk(fr):
+        name = fr.function
+        if name in ("read_unit", "from_values", "encode_summary_set", "put_blob", "_row_weights"):
+            shares[name] = shares.get(name, 0.0) + fr.time
+            return
+        for ch in fr.children:
+            walk(ch)
+
+    if root is not None:
+        walk(root)
+    return {"units": len(units), "seconds": total,
+            "shares": {k: v / total for k, v in shares.items()} if total else {}}

@@ -158,6 +158,12 @@ def markdown(res: dict, meta: dict) -> str:
                 f"| encode summary set | {1e3 * pu['encode_cpu_s']:.2f} ms | {pu['blob_bytes']:,} B |",
                 f"| put_blob (local) | {1e3 * pu['put_cpu_s']:.2f} ms CPU, {1e3 * pu['put_wall_s']:.1f} ms wall | |",
                 f"| whole sketch task | {1e3 * pu['task_cpu_s']:.1f} ms | |"]
+    pr = res.get("profile")
+    if pr and pr.get("shares"):
+        out += ["", f"Profile of the sketch task over {pr['units']} units (pyinstrument, "
+                "[profile.txt](profile.txt)): " + ", ".join(
+                    f"{k} {100 * v:.0f}%" for k, v in sorted(pr["shares"].items(), key=lambda kv: -kv[1]))
+                + " of the time."]
     wp = res.get("whole_process")
     vd = res.get("versus_dask")
     if wp or vd:
