@@ -15,7 +15,7 @@ temporary file, a PUT in flight).  After every kill:
   temporary files, no attempt manifests, a canonical manifest for every
   version, and the pointer on the current version.
 
-Local disk and the S3-compatible test server; 6 + 4 trials in CI, 60 + 60 with
+Local disk and the S3-compatible test server; 4 + 2 trials in CI, 60 + 60 with
 ``-m slow``.  docs/STORE.md, "A killed writer", is the specification.
 """
 
@@ -236,11 +236,11 @@ def _kind(line: str) -> str:
 
 
 def test_killed_publisher_local(tmp_path, client, monkeypatch):
-    _trials(Site(tmp_path), client, trials=6, seed=1, monkeypatch=monkeypatch)
+    _trials(Site(tmp_path), client, trials=4, seed=1, monkeypatch=monkeypatch)
 
 
 def test_killed_publisher_s3(tmp_path, client, monkeypatch, s3_options, s3_bucket):
-    _trials(Site(tmp_path, s3_options, s3_bucket), client, trials=4, seed=2, monkeypatch=monkeypatch)
+    _trials(Site(tmp_path, s3_options, s3_bucket), client, trials=2, seed=2, monkeypatch=monkeypatch)
 
 
 @pytest.mark.slow

@@ -10,7 +10,7 @@ refreshes.  Every load must succeed, and every (version, checksum, digest) seen
 must be exactly that version's as read afterwards by a pinned load: one
 consistent version per load, never a mix.
 
-Local disk: 8 loaders in CI, 32 with ``-m slow``; the S3-compatible server: 32
+Local disk: 6 loaders in CI, 32 with ``-m slow``; the S3-compatible server: 32
 with ``-m slow``.
 """
 
@@ -149,7 +149,7 @@ def _run(tmp_path, client, n_loaders, s3=None, bucket=None):
 
 
 def test_loaders_during_refresh_local(tmp_path, client):
-    _run(tmp_path, client, n_loaders=8)
+    _run(tmp_path, client, n_loaders=6)
 
 
 @pytest.mark.slow

@@ -83,7 +83,7 @@ def _opts(creds, with_secrets=True):
     return out
 
 
-@pytest.mark.parametrize("via", ["options", "environment"])
+@pytest.mark.parametrize("via", ["options", pytest.param("environment", marks=pytest.mark.slow)])
 def test_cli_outputs_and_stored_objects_hold_no_credential(creds, bucket, via):
     env = {} if via == "options" else {"AWS_ACCESS_KEY_ID": KEY, "AWS_SECRET_ACCESS_KEY": SECRET,
                                        "AWS_SESSION_TOKEN": TOKEN}

@@ -168,7 +168,7 @@ def test_csv_reads_agree_on_slow_storage(tmp_path):
     so = {"target_protocol": "file", "latency_seconds": 0.01}
     ds = open_dataset(f"faulty://{d}", storage_options=so)
     expect = pacsv.read_csv(str(d / "a.csv")).column("x").to_numpy()   # reference: pyarrow.csv
-    for _ in range(6):
+    for _ in range(4):
         arrays, _, rows = read_unit(ds.units[0], ["x"], protocol=ds.protocol, storage_options=so)
         assert rows == len(expect)
         np.testing.assert_array_equal(arrays["x"], expect)
@@ -271,8 +271,8 @@ def _trials(client, dataset, tmp_path, seeds, mixes=FAULT_MIXES):
 
 
 def test_transient_faults_are_retried_and_the_table_is_identical(client, dataset, tmp_path, pinned):
-    rows = _trials(client, dataset, tmp_path, seeds=range(2))
-    assert sum(r[2] for r in rows) >= 10        # the faults really happened
+    rows = _trials(client, dataset, tmp_path, seeds=range(1))
+    assert sum(r[2] for r in rows) >= 5         # the faults really happened
 
 
 @pytest.mark.slow
