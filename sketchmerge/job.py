@@ -165,24 +165,42 @@ def _leaf(x: np.ndarray, w, capacity: int) -> Summary:
         return Summary.from_values(x, w).prune(capacity)
 
 
+def _sketch_columns(unit, spec: BuildSpec, where: str) -> tuple[dict, int]:
+    """Summaries of one unit's features, reading the weight inputs first and then one
+    feature column at a time, each dropped once its summary is built: a worker holds the
+    weights, one feature column and the summaries, not every selected column at once."""
+    from .sources import iter_unit
+
+    side = [c for c in spec.columns_to_read() if c not in spec.features]
+    cols = iter_unit(unit, side + list(spec.features), protocol=spec.protocol,
+                     storage_options=spec.storage_options or None)
+    try:
+        rows = next(cols)
+        arrays = {}
+        for _ in side:
+            name, a, _dtype = next(cols)
+            arrays[name] = a
+        w = _row_weights(arrays, spec, where, rows)
+        del arrays
+        sums = {}
+        unified = dict(spec.dtypes)
+        for name, a, dtype in cols:
+            try:
+                s = _leaf(a, w, spec.leaf_capacity)
+            except InputError as e:
+                raise InputError(f"{where}, column {name!r}: {e}") from None
+            del a
+            sums[name] = _with_dtype(s, unified.get(name) or dtype or "float64")
+    finally:
+        cols.close()
+    return sums, rows
+
+
 def sketch_unit(unit, spec: BuildSpec, key: str) -> bytes:
     """Worker task: read one unit, sketch every feature, cache and return the blob."""
-    from .sources import read_unit
-
-    arrays, dtypes, rows = with_retries(
-        lambda: read_unit(unit, spec.columns_to_read(), protocol=spec.protocol,
-                          storage_options=spec.storage_options or None),
-        f"reading unit {unit.address}")
     where = f"unit {unit.address}"
-    w = _row_weights(arrays, spec, where, rows)
-    sums = {}
-    unified = dict(spec.dtypes)
-    for name in spec.features:
-        try:
-            s = _leaf(arrays[name], w, spec.leaf_capacity)
-        except InputError as e:
-            raise InputError(f"{where}, column {name!r}: {e}") from None
-        sums[name] = _with_dtype(s, unified.get(name) or dtypes.get(name, "float64"))
+    sums, rows = with_retries(lambda: _sketch_columns(unit, spec, where),
+                              f"reading unit {unit.address}")
     blob = encode_summary_set(sums, {"rows": int(rows)})
     if spec.table_url:
         _store(spec.table_url, spec.table_options).put_blob(key, blob)

@@ -1540,6 +1540,28 @@ def read_unit(unit: Unit, columns: list[str], *, protocol: str,
     StorageError
         Transient storage failure.
     """
+    cols = iter_unit(unit, columns, protocol=protocol, storage_options=storage_options,
+                     verify=verify)
+    rows = next(cols)
+    out: dict[str, np.ndarray] = {}
+    dtypes: dict[str, str] = {}
+    for c, a, d in cols:
+        out[c], dtypes[c] = a, d
+    return out, dtypes, rows
+
+
+def iter_unit(unit: Unit, columns: list[str], *, protocol: str,
+              storage_options: dict | None = None, verify: bool = True):
+    """:func:`read_unit` one column at a time, for a consumer that drops each column
+    before asking for the next.
+
+    A generator: yields the unit's row count (int) first, then ``(name, array, dtype)``
+    for every requested column in the order given, the same values :func:`read_unit`
+    returns.  A Parquet unit's columns are decoded as they are asked for, so the
+    consumer and this reader hold one column of the unit between them; CSV and Arrow
+    IPC units are read whole first.  Raises what :func:`read_unit` raises, on the first
+    ``next`` for what is wrong with the file and later for what is wrong with a column.
+    """
     secrets = _secret_values(storage_options)
     fs = filesystem(protocol, storage_options)
     where = f"{redact(_display(protocol, unit.path), secrets)} (unit {unit.address})"
@@ -1567,33 +1589,37 @@ def read_unit(unit: Unit, columns: list[str], *, protocol: str,
         if size < 0 and unit.fmt == "arrow":
             size = int(fs.size(unit.path))
         if unit.fmt == "csv" and (size == 0 or unit.nbytes == 0):
-            arrays, rows = {}, 0
-        else:
-            with _open(fs, protocol, unit.path, sequential=unit.fmt == "csv", size=size,
-                       where=where) as f:
-                if unit.fmt == "csv":
-                    arrays, rows, kinds = _read_csv(f, unit, cols, where)
+            yield 0
+            for c in cols:
+                yield c, np.full(0, np.nan), "missing"
+            return
+        with _open(fs, protocol, unit.path, sequential=unit.fmt == "csv", size=size,
+                   where=where) as f:
+            raw: dict = {}
+            if unit.fmt == "csv":
+                arrays, rows, kinds = _read_csv(f, unit, cols, where)
+            else:
+                if unit.fmt == "parquet":
+                    raw, rows = _read_parquet(f, unit, cols, where,
+                                              remote=protocol not in _LOCAL_PROTOCOLS)
                 else:
-                    if unit.fmt == "parquet":
-                        raw, rows = _read_parquet(f, unit, cols, where,
-                                                  remote=protocol not in _LOCAL_PROTOCOLS)
-                    else:
-                        raw, rows = _read_arrow(f, unit, cols, where, size)
-                    arrays = {}
-                    for c in list(raw):   # pop as we go: one source column alive at a time
-                        col = raw.pop(c)
-                        arrays[c], kinds[c] = _float64(col() if callable(col) else col, c, where)
+                    raw, rows = _read_arrow(f, unit, cols, where, size)
+                arrays = {}
+            rows = int(rows)
+            yield rows
+            for c in cols:   # pop as we go: one source column alive at a time
+                if c in raw:
+                    col = raw.pop(c)
+                    a, kinds[c] = _float64(col() if callable(col) else col, c, where)
+                    del col
+                elif c in arrays:
+                    a = arrays.pop(c)
+                else:
+                    yield c, np.full(rows, np.nan), "missing"
+                    continue
+                if len(a) != rows:
+                    raise InputError(f"{where}, column {c!r}: expected {rows} values, got {len(a)}")
+                yield c, a, kinds[c]
+                del a   # not kept while the next column is read
     except Exception as e:  # noqa: BLE001 - translated at the storage boundary
         _data_error(e, where, secrets)
-
-    out: dict[str, np.ndarray] = {}
-    dtypes: dict[str, str] = {}
-    for c in cols:
-        if c in arrays:
-            a = arrays[c]
-            if len(a) != rows:
-                raise InputError(f"{where}, column {c!r}: expected {rows} values, got {len(a)}")
-            out[c], dtypes[c] = a, kinds[c]
-        else:
-            out[c], dtypes[c] = np.full(rows, np.nan), "missing"
-    return out, dtypes, int(rows)
