@@ -281,10 +281,7 @@ def test_transient_faults_many_trials(client, dataset, tmp_path, pinned):
 
 
 def test_faults_on_the_table_store_are_retried(client, dataset, tmp_path, pinned, memfs):
-    """The table itself on a faulty store (fallback protocol): writes, reads, listings fail.
-
-    The table wraps ``memory://``: a ``faulty:///abs/path`` TABLE URL would meet the
-    store's URL bug pinned in test_reliability_paths.py."""
+    """The table itself on a faulty store (fallback protocol): writes, reads, listings fail."""
     ref = _reference(client, dataset, tmp_path)
     for seed in range(3):
         tso = {"target_protocol": "memory", "seed": seed, "rate": 0.05, "max_faults": 3,

@@ -2,7 +2,9 @@
 
 A real cluster on 127.0.0.1 (a ``dask scheduler`` and two single-threaded
 worker processes under their nannies, as in tests/test_cluster.py) runs the
-``sketchmerge build`` command.  Once the scheduler holds the build's tasks, the
+``sketchmerge build`` command, reading its source through ``faulty://`` with
+30 ms of latency per read (slow storage, so the task phase lasts a few seconds
+on any machine).  Once the scheduler holds the build's tasks, the
 test kills a worker that is processing some of them.  The scheduler recomputes
 what was lost, the nanny starts a new worker, and the build must complete with
 a table byte-identical to an undisturbed build's (creation time pinned with
@@ -85,21 +87,28 @@ def cluster(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def dataset(tmp_path_factory):
-    """36 units of 120,000 rows: a build whose task phase lasts a few seconds on 2 cores."""
+    """36 units of 40,000 rows."""
     root = tmp_path_factory.mktemp("workers") / "src"
     r = np.random.default_rng(17)
     for day in range(6):
         d = root / f"day=2026-11-{day + 1:02d}"
         d.mkdir(parents=True)
-        n = 720_000
+        n = 240_000
         pq.write_table(pa.table({"x": r.lognormal(0, 1, n), "y": r.normal(size=n), "k": r.integers(0, 40, n),
-                                 "w": r.uniform(0.2, 2.0, n)}), str(d / "p.parquet"), row_group_size=120_000)
+                                 "w": r.uniform(0.2, 2.0, n)}), str(d / "p.parquet"), row_group_size=40_000)
     return str(root)
 
 
+# the build command in a process that knows faulty:// (importing sketchmerge.testing registers it)
+CLI = "import sys, sketchmerge.testing; from sketchmerge.cli import main; sys.exit(main(sys.argv[1:]))"
+
+
 def _build_cmd(src, table, sf):
-    return [sys.executable, "-m", "sketchmerge.cli", "build", src, "--out", table, "--scheduler-file", sf,
-            "--weight-column", "w", "--bins", "64", "--json"]
+    # the source is read through faulty:// with 30 ms per read (the workers preload it): slow
+    # storage gives the build a task phase of a few seconds whatever the machine's speed
+    return [sys.executable, "-c", CLI, "build", f"faulty://{src}", "--out", table,
+            "--scheduler-file", sf, "--weight-column", "w", "--bins", "64", "--json",
+            "--storage-option", "target_protocol=file", "--storage-option", "latency_seconds=0.03"]
 
 
 def _env():
