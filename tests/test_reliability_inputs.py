@@ -267,6 +267,8 @@ CATALOGUE = [
     Case("saturated predictions: zero hessian", _saturated, BAD_INPUT, ("'p'", "total weight"),
          options=("--hessian", "logistic", "--prediction-column", "p")),
     Case("integers beyond 2**53", _huge_ints, BAD_INPUT, ("big.parquet", "'x'")),
+    Case("credentials inside the URL", lambda root: None, BAD_INPUT, ("s3://***@bucket/src", "storage_options"),
+         source="s3://AKIDEXAMPLE:fake%2Fsecret9@bucket/src"),
     Case("unreadable file", _write_good, STORAGE, ("a.parquet",), source="faulty://{root}",
          options=("--storage-option", "target_protocol=file",
                   "--storage-option", "permanent=*/a.parquet")),
@@ -290,6 +292,7 @@ def test_bad_input(case, run, tmp_path):
     assert "Traceback" not in stderr and stdout == ""
     for name in case.names:
         assert _fmt(name, root) in errors[0], (name, errors[0])
+    assert "fake%2Fsecret9" not in stderr and "AKIDEXAMPLE" not in stderr
     assert not os.path.exists(os.path.join(out, "versions")) or TableStore(out).versions() == []
 
 
