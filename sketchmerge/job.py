@@ -502,7 +502,7 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
             and previous.content.get("options") == options and previous.content.get("source") == content["source"]:
         changed = False
     if changed:
-        version = _publish(store, feats, content, previous, units, plan, o)
+        version, published = _publish(store, feats, content, previous, units, plan, o)
     else:
         version = current
         # a publisher killed after its commit point can leave the pointer behind and its
@@ -519,8 +519,7 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
         try:
             from .drift import drift_between
 
-            new = decode_table(store.read_version(version)[1])
-            report["drift"] = drift_between(previous, new)
+            report["drift"] = drift_between(previous, decode_table(published))
         except Exception as e:  # drift is a report: never fail a published build on it
             log.warning("drift against version %s could not be computed: %s", current, e)
     if changed:
@@ -551,7 +550,7 @@ def _created() -> str:
     return time.strftime("%Y-%m-%dT%H:%M:%SZ", t)
 
 
-def _publish(store, feats, content, previous, units, plan, o) -> int:
+def _publish(store, feats, content, previous, units, plan, o) -> tuple[int, bytes]:
     attempts = int(config.get("publish_attempts"))
     last_err = None
     for _ in range(attempts):
@@ -562,7 +561,7 @@ def _publish(store, feats, content, previous, units, plan, o) -> int:
         data = encode_table(feats, version=version, content_extra=content, record=record)
         try:
             store.publish(version, data, plan.all_keys())
-            return version
+            return version, data
         except PublishRaceError as e:
             last_err = e
             log.warning("version %d of %s was published by another builder; publishing on top", version, store.url)
