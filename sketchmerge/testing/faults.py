@@ -576,7 +576,10 @@ class FaultyFile(io.RawIOBase):
 
     def __getattr__(self, name):
         # anything else (e.g. ``details``, ``loc``) comes from the wrapped file
-        return getattr(self.__dict__["inner"], name)
+        inner = self.__dict__.get("inner")
+        if inner is None:
+            raise AttributeError(name)
+        return getattr(inner, name)
 
 
 def register() -> None:
