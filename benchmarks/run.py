@@ -39,13 +39,18 @@ def _load() -> str:
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="tiny sizes, one repeat (a smoke run)")
-    ap.add_argument("--out", default=os.path.join(HERE, "results"), help="results folder")
+    ap.add_argument("--out", help="results folder (default: benchmarks/results for a full run; "
+                                  "a temporary folder with --quick or --only, so that the "
+                                  "committed results are only ever those of a full run)")
     ap.add_argument("--data-dir", help="where generated data is kept (default: benchmarks/data, "
                                        "or a temporary folder with --quick)")
     ap.add_argument("--only", help="comma-separated sections: " + ",".join(SECTIONS))
     args = ap.parse_args(argv)
 
     cfg = cases.config(args.quick)
+    if args.out is None:
+        args.out = (os.path.join(HERE, "results") if not (args.quick or args.only)
+                    else os.path.join(tempfile.gettempdir(), "sketchmerge-bench-results"))
     want = set(args.only.split(",")) if args.only else set(SECTIONS)
     unknown = want - set(SECTIONS)
     if unknown:

@@ -633,7 +633,8 @@ def profile(cfg: Config, p: Paths, out_path: str) -> dict:
 
     def walk(fr):
         name = fr.function
-        if name in ("read_unit", "from_values", "encode_summary_set", "put_blob", "_row_weights"):
+        if name in ("read_unit", "iter_unit", "from_values", "encode_summary_set", "put_blob",
+                    "_row_weights"):
             shares[name] = shares.get(name, 0.0) + fr.time
             return
         for ch in fr.children:
