@@ -103,7 +103,7 @@ def check_weights(weights, n: int, name: str = "weights") -> np.ndarray:
     if not ok.all():
         i = int(np.argmin(ok))
         raise InputError(
-            f"{name}: weight {w[i]!r} at position {i} is not allowed; "
+            f"{name}: weight {float(w[i])!r} at position {i} is not allowed; "
             "weights must be finite and >= 0"
         )
     return w

@@ -65,7 +65,7 @@ def hessian(loss: str, prediction: np.ndarray | None, scale: str | None = None,
     p = np.asarray(prediction, dtype=np.float64)
     if not np.all(np.isfinite(p)):
         i = int(np.argmax(~np.isfinite(p)))
-        raise InputError(f"{where}: prediction {p[i]!r} at row {i} is not finite")
+        raise InputError(f"{where}: prediction {float(p[i])!r} at row {i} is not finite")
     if loss == "logistic":
         if scale == "margin":
             # 1/(1+exp(-m)) computed without overflow for large |m|
@@ -75,7 +75,7 @@ def hessian(loss: str, prediction: np.ndarray | None, scale: str | None = None,
             if bad.any():
                 i = int(np.argmax(bad))
                 raise InputError(f"{where}: expected probabilities in [0, 1] for logistic loss, got "
-                                 f"{p[i]!r} at row {i} (use prediction scale 'margin' for raw scores)")
+                                 f"{float(p[i])!r} at row {i} (use prediction scale 'margin' for raw scores)")
         return p * (1.0 - p)
     # poisson with log link: h = mu
     if scale == "margin":
@@ -83,10 +83,10 @@ def hessian(loss: str, prediction: np.ndarray | None, scale: str | None = None,
             mu = np.exp(p)
         if not np.all(np.isfinite(mu)):
             i = int(np.argmax(~np.isfinite(mu)))
-            raise InputError(f"{where}: margin {p[i]!r} at row {i} overflows exp() for poisson loss")
+            raise InputError(f"{where}: margin {float(p[i])!r} at row {i} overflows exp() for poisson loss")
         return mu
     bad = p < 0.0
     if bad.any():
         i = int(np.argmax(bad))
-        raise InputError(f"{where}: expected predicted means >= 0 for poisson loss, got {p[i]!r} at row {i}")
+        raise InputError(f"{where}: expected predicted means >= 0 for poisson loss, got {float(p[i])!r} at row {i}")
     return p
