@@ -34,6 +34,19 @@ def memfs():
     fs.pseudo_dirs.append("")
 
 
+@pytest.fixture(scope="module")
+def client():
+    """An in-process Dask cluster (one worker, two threads; every socket on 127.0.0.1)."""
+    from distributed import Client, LocalCluster
+
+    cluster = LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
+                           dashboard_address="127.0.0.1:0", worker_dashboard_address="127.0.0.1:0")
+    c = Client(cluster)
+    yield c
+    c.close()
+    cluster.close()
+
+
 @pytest.fixture(scope="session")
 def s3_server():
     """Start moto's S3-compatible server on 127.0.0.1 (free port); yield its endpoint URL."""

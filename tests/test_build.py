@@ -23,18 +23,6 @@ import sketchmerge
 from sketchmerge.errors import InputError, NoInputError
 
 
-@pytest.fixture(scope="module")
-def client():
-    from distributed import Client, LocalCluster
-
-    cluster = LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
-                           dashboard_address="127.0.0.1:0", worker_dashboard_address="127.0.0.1:0")
-    c = Client(cluster)
-    yield c
-    c.close()
-    cluster.close()
-
-
 def _rng(seed=0):
     return np.random.default_rng(seed)
 

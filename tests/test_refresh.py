@@ -19,18 +19,6 @@ import sketchmerge
 from sketchmerge.store import TableStore
 
 
-@pytest.fixture(scope="module")
-def client():
-    from distributed import Client, LocalCluster
-
-    cluster = LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
-                           dashboard_address="127.0.0.1:0", worker_dashboard_address="127.0.0.1:0")
-    c = Client(cluster)
-    yield c
-    c.close()
-    cluster.close()
-
-
 def write_day(root, day, n=6000, seed=None, shift=0.0):
     rng = np.random.default_rng(day if seed is None else seed)
     d = os.path.join(root, f"day=2026-11-{day:02d}")

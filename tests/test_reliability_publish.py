@@ -128,18 +128,6 @@ class Site:
         return sorted(k[len(pre):] for k in self.fs.find(pre))
 
 
-@pytest.fixture(scope="module")
-def client():
-    from distributed import Client, LocalCluster
-
-    cluster = LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
-                           dashboard_address="127.0.0.1:0", worker_dashboard_address="127.0.0.1:0")
-    c = Client(cluster)
-    yield c
-    c.close()
-    cluster.close()
-
-
 def _child(site, table, kill_at, delay, log_path):
     env = dict(os.environ, SOURCE_DATE_EPOCH=EPOCH)
     p = subprocess.run([sys.executable, "-c", CHILD, site.url("src"), site.url(table), json.dumps(site.so),

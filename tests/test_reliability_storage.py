@@ -11,7 +11,6 @@ permanent faults must fail with StorageError and publish nothing.
 from __future__ import annotations
 
 import errno
-import io
 import logging
 import os
 import time
@@ -175,18 +174,6 @@ def test_csv_reads_agree_on_slow_storage(tmp_path):
 
 
 # ----------------------------------------------------------------------------- builds
-
-@pytest.fixture(scope="module")
-def client():
-    from distributed import Client, LocalCluster
-
-    cluster = LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
-                           dashboard_address="127.0.0.1:0", worker_dashboard_address="127.0.0.1:0")
-    c = Client(cluster)
-    yield c
-    c.close()
-    cluster.close()
-
 
 @pytest.fixture(scope="module")
 def dataset(tmp_path_factory):
