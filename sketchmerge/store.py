@@ -177,10 +177,10 @@ def _pack(obj) -> bytes:
     return msgpack.packb(obj, use_bin_type=True)
 
 
-def _unpack(data: bytes, what: str, *, max_str: int, max_bin: int, max_array: int, max_map: int):
+def _unpack(data: bytes, what: str, *, max_str: int, max_binary: int, max_array: int, max_map: int):
     try:
         return msgpack.unpackb(data, raw=False, strict_map_key=True, use_list=True,
-                               max_str_len=max_str, max_bin_len=max_bin, max_array_len=max_array,
+                               max_str_len=max_str, max_bin_len=max_binary, max_array_len=max_array,
                                max_map_len=max_map, max_ext_len=0)
     except Exception as e:  # msgpack raises several types; all mean malformed bytes
         raise FormatError(f"{what}: expected a msgpack document, got malformed bytes "
@@ -198,7 +198,7 @@ def _decode_envelope(data, kind: str, what: str, *, max_array: int) -> dict:
     if not isinstance(data, (bytes, bytearray, memoryview)):
         raise FormatError(f"{what}: expected bytes, got {type(data).__name__}")
     data = bytes(data)
-    env = _unpack(data, what, max_str=128, max_bin=len(data), max_array=0, max_map=8)
+    env = _unpack(data, what, max_str=128, max_binary=len(data), max_array=0, max_map=8)
     if not isinstance(env, dict) or set(env) != {"kind", "format", "payload", "sha256"}:
         got = sorted(env) if isinstance(env, dict) else type(env).__name__
         raise FormatError(f"{what}: expected a map with keys format, kind, payload, sha256, got {got}")
@@ -214,7 +214,7 @@ def _decode_envelope(data, kind: str, what: str, *, max_array: int) -> dict:
     digest = hashlib.sha256(payload).hexdigest()
     if env["sha256"] != digest:
         raise FormatError(f"{what}: expected sha256 {_short(env['sha256'])} of the payload, got {digest}")
-    body = _unpack(payload, what, max_str=128, max_bin=0, max_array=max_array, max_map=16)
+    body = _unpack(payload, what, max_str=128, max_binary=0, max_array=max_array, max_map=16)
     if not isinstance(body, dict):
         raise FormatError(f"{what}: expected a payload map, got {type(body).__name__}")
     return body
