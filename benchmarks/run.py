@@ -37,7 +37,9 @@ def _load() -> str:
 
 
 def main(argv=None) -> int:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap = argparse.ArgumentParser(description="The sketchmerge benchmark suite: generates its data, "
+                                 "runs every measurement, writes the results (see "
+                                 "benchmarks/PERFORMANCE.md).")
     ap.add_argument("--quick", action="store_true", help="tiny sizes, one repeat (a smoke run)")
     ap.add_argument("--out", help="results folder (default: benchmarks/results for a full run; "
                                   "a temporary folder with --quick or --only, so that the "
