@@ -22,11 +22,6 @@ import sketchmerge
 pytestmark = pytest.mark.cluster
 
 
-def _dask_cmd():
-    exe = shutil.which("dask", path=os.path.dirname(sys.executable)) or shutil.which("dask")
-    return [exe] if exe else [sys.executable, "-m", "distributed.cli.dask_scheduler"]
-
-
 def _wait_file(path, procs, timeout=60):
     t0 = time.time()
     while time.time() - t0 < timeout:
