@@ -1,6 +1,8 @@
 """The sketch core: a mergeable weighted quantile summary with a certified rank bound.
 
-This module is pure: it imports numpy only, does no I/O and knows nothing of
+This module is pure: it imports numpy only (and, when built, the optional C
+kernels of :mod:`sketchmerge._kernels`, which fuse its row passes with the same
+arithmetic and give bit-identical summaries), does no I/O and knows nothing of
 dask or pyarrow.  Serialization lives in :mod:`sketchmerge.blob` (format in
 ``docs/FORMAT.md``); :meth:`Summary.to_bytes` defers to it.
 
@@ -42,13 +44,29 @@ and :func:`pruned_entries`, and benchmarks/README.md for the measurements.
 
 from __future__ import annotations
 
+import os
 import threading
 
 import numpy as np
 
 from .errors import InputError
 
-__all__ = ["Summary", "check_values", "check_weights", "exact_entries", "pruned_entries", "release_scratch"]
+# The optional C kernels (sketchmerge/_kernels.c): one pass where the numpy code below
+# takes several, same results bit for bit.  SKETCHMERGE_KERNELS=0 turns them off.
+_K = None
+if os.environ.get("SKETCHMERGE_KERNELS", "1") != "0":
+    try:
+        from . import _kernels as _K
+    except ImportError:  # not built (no C compiler at install time): numpy paths
+        _K = None
+
+
+def kernels_available() -> bool:
+    """True when construction uses the compiled kernels (see DEVELOPERS.md)."""
+    return _K is not None
+
+__all__ = ["Summary", "check_values", "check_weights", "exact_entries", "kernels_available",
+           "pruned_entries", "release_scratch"]
 
 _F8 = np.float64
 _MAX_EXACT_INT = 2**53
@@ -98,10 +116,13 @@ def check_weights(weights, n: int, name: str = "weights") -> np.ndarray:
     if w.dtype.kind not in "fiub":
         raise InputError(f"{name}: expected numeric weights, got dtype {w.dtype}")
     w = w.astype(_F8, copy=False)
-    ok = w >= 0.0  # False for NaN and negatives
-    ok &= w < np.inf
-    if not ok.all():
-        i = int(np.argmin(ok))
+    if _K is not None and w.flags.c_contiguous:
+        i = _K.weights_ok(w)
+    else:
+        ok = w >= 0.0  # False for NaN and negatives
+        ok &= w < np.inf
+        i = -1 if ok.all() else int(np.argmin(ok))
+    if i >= 0:
         raise InputError(
             f"{name}: weight {float(w[i])!r} at position {i} is not allowed; "
             "weights must be finite and >= 0"
@@ -126,6 +147,7 @@ _LOW63 = np.int64(2**63 - 1)
 _U64_MAX = np.uint64(2**64 - 1)
 _SAMPLE = 2048          # strided sample that shapes the first-level map
 _FINISH_ROWS = 8192     # rows left in refined cells: sort them instead of bucketing again
+_SORT_DIV = 4           # targets' cells hold at most 1/_SORT_DIV of the rows: sort them at once
 _FIRST_BITS = 16        # at most 2**16 first-level cells
 _DIRECT_ROWS = 24       # direct pruned construction from this many rows per unit of capacity
 _SCRATCH_MAX = 1 << 20  # scratch buffers up to this many elements are kept per thread
@@ -324,7 +346,7 @@ def _exact_buckets(x, w):
     rows of buckets holding several values are sorted."""
     n = x.shape[0]
     k = float_keys(x, out=_scratch("keys", n, np.uint64))
-    cells, m, _ = _first_level(x, w, n, float(x.min()), float(x.max()))
+    cells, m, _ = _first_cells(x, n, *_first_map(x, w, n, float(x.min()), float(x.max())))
     cnt = np.bincount(cells, minlength=m)
     cmin = np.full(m, _U64_MAX, dtype=np.uint64)
     cmax = np.zeros(m, dtype=np.uint64)
@@ -466,7 +488,7 @@ def exact_entries(x: np.ndarray, w: np.ndarray | None, method: str = "auto"):
     return xu, (np.ones(xu.shape[0], _F8) if wu is None else wu.astype(_F8, copy=False))
 
 
-def _first_level(x, w, n, xmin, xmax):
+def _first_map(x, w, n, xmin, xmax):
     """Map every row to a first-level cell by a monotone function of its value.
 
     The map follows the data's binades (the sign-and-exponent field of the
@@ -480,8 +502,11 @@ def _first_level(x, w, n, xmin, xmax):
     never need refining.  Any monotone map is correct; the map only decides
     how many rows the later levels see.
 
-    Returns ``(cells, M, heavy_cell)``: ``cells`` is a scratch buffer,
-    ``heavy_cell`` the index of the point mass's own cell or -1.
+    Returns the map's parameters ``(emin, ncell, base, size, heavy)``: per
+    binade from ``emin`` its cell count and first cell, the cell count before
+    the point mass's split, and the point mass's key (or None).
+    :func:`_first_level` applies the map with numpy, the compiled kernel in
+    one pass.
     """
     m_bits = int(min(_FIRST_BITS, max(8, (max(n // 4, 1) - 1).bit_length())))
     step = max(1, n // _SAMPLE)
@@ -509,6 +534,15 @@ def _first_level(x, w, n, xmin, xmax):
     np.minimum(ncell, 1 << 16, out=ncell)  # a binade resolves at most 16 mantissa bits here
     base = np.cumsum(ncell) - ncell
     size = int(base[-1] + ncell[-1])
+    return emin, ncell, base, size, heavy
+
+
+def _first_cells(x, n, emin, ncell, base, size, heavy):
+    """Apply the map of :func:`_first_map` to every row with numpy.
+
+    Returns ``(cells, M, heavy_cell)``: ``cells`` is a scratch buffer, ``M``
+    the cell count, ``heavy_cell`` the index of the point mass's own cell or -1.
+    """
     k = float_keys(x, out=_scratch("cells", n, np.uint64))
     e = np.right_shift(k, np.uint64(52), out=_scratch("binade", n, np.uint64)).view(np.int64)
     e -= emin
@@ -532,6 +566,39 @@ def _first_level(x, w, n, xmin, xmax):
         heavy_cell = 3 * hcell + 1
         size *= 3
     return cells, size, heavy_cell
+
+
+def _first_level(x, w, n, emin, ncell, base, size, heavy_key):
+    """The first level: every row's cell and, per cell, the row count, the weight
+    (summed in row order) and the smallest and largest key.
+
+    Returns ``(cells, m, heavy_cell, cnt, hw, kmin, kmax)``; ``cells`` is a
+    scratch buffer.  The compiled kernel does it in one pass; the numpy route
+    computes the same numbers (np.bincount also sums in row order).
+    """
+    if _K is not None and x.flags.c_contiguous and (w is None or w.flags.c_contiguous):
+        m = size * 3 if heavy_key is not None else size
+        heavy = _heavy_cell(heavy_key, emin, ncell, base) if heavy_key is not None else -1
+        cells = _scratch("cells", n, np.int64)
+        table = _scratch("table", 4 * m, np.uint64).reshape(m, 4)  # row c: a cell's count, weight, key range
+        _K.first_level(x, w, emin, ncell, base,
+                       None if heavy_key is None else float(key_values(heavy_key)),
+                       cells, table.reshape(-1))
+        table = table.T.copy()
+        cnt, kmin, kmax = table[0].view(np.int64), table[2], table[3]
+        hw = None if w is None else table[1].view(_F8)
+    else:
+        cells, m, heavy = _first_cells(x, n, emin, ncell, base, size, heavy_key)
+        cnt = np.bincount(cells, minlength=m)
+        hw = None if w is None else np.bincount(cells, weights=w, minlength=m)
+        k = float_keys(x, out=_scratch("binade", n, np.uint64))
+        kmin = np.full(m, _U64_MAX, np.uint64)
+        kmax = np.zeros(m, np.uint64)
+        np.minimum.at(kmin, cells, k)
+        np.maximum.at(kmax, cells, k)
+    if hw is None:
+        hw = cnt.astype(_F8)
+    return cells, m, heavy, cnt, hw, kmin, kmax
 
 
 def _locate(dv, cend, h, lo, cnt):
@@ -595,31 +662,47 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
     holds a single value or few enough rows remain to sort them.  Most rows
     see three vectorised passes (map, histogram, membership) and no sort.
     """
+    got = _direct(x, w, capacity)
+    return None if got is None or got[1] is None else got
+
+
+def _heavy_cell(heavy, emin, ncell, base) -> int:
+    """The point mass's own first-level cell (see :func:`_first_level`)."""
+    he = (int(heavy) >> 52) - emin
+    return 3 * int(base[he] + ((((int(heavy) >> 36) & 0xFFFF) * int(ncell[he])) >> 16)) + 1
+
+
+def _direct(x, w, capacity, stats=None):
+    """:func:`pruned_entries`, or ``(values, None, weights, total)``: the exact
+    entries, when the first level finds every occupied cell holding a single
+    value (the caller then prunes the exact summary).  ``stats`` is ``(min,
+    max, order)`` of ``x`` when the caller scanned it already."""
     n = x.shape[0]
     b = int(capacity)
-    if n <= b + 1 or _monotone(x):
+    if n <= b + 1:
         return None
-    few, top, _ = _sample_stats(x)
-    if few or (w is None and top >= 0.5):  # np.sort is quick when one value dominates
-        return None
-    imin, imax = int(np.argmin(x)), int(np.argmax(x))
-    if not x[imin] < x[imax]:
+    if stats is None and _K is not None and x.flags.c_contiguous:
+        stats = _K.scan(x)[1:]
+    if stats is not None:
+        xmin, xmax, order = stats
+    else:
+        order = _monotone(x)
+        xmin, xmax = float(np.min(x)), float(np.max(x))
+    if order or not xmin < xmax:
         return None
     total = float(n) if w is None else float(np.sum(w))
     if not total > 0.0:
         return None
-    kmin, kmax = float_keys(np.array([x[imin], x[imax]]))
-    cells, m, heavy = _first_level(x, w, n, float(x[imin]), float(x[imax]))
-    if w is None:
-        cnt = np.bincount(cells, minlength=m)
-        if np.count_nonzero(cnt) <= b + 1:
-            return None
-        hw = cnt.astype(_F8)
-    else:
-        hw = np.bincount(cells, weights=w, minlength=m)
-        # few occupied cells mean few distinct values (zero-weight rows count too)
-        if np.count_nonzero(hw) <= b + 1 and np.count_nonzero(np.bincount(cells, minlength=m)) <= b + 1:
-            return None
+    kmin, kmax = float_keys(np.array([xmin, xmax]))
+    emin, ncell, base, size, heavy_key = _first_map(x, w, n, xmin, xmax)
+    cells, m, heavy, cnt, hw, first_mn, first_mx = _first_level(x, w, n, emin, ncell, base, size, heavy_key)
+    occ = np.flatnonzero(cnt)
+    if bool(np.array_equal(first_mn[occ], first_mx[occ])):
+        # every occupied cell holds one value: the histogram is the exact summary
+        return key_values(first_mn[occ]), None, (cnt[occ] if w is None else hw[occ]), total
+    if occ.shape[0] <= b + 1:  # few distinct values: the exact methods, and it may stay exact
+        return None
+    ends = [int(occ[0]), int(occ[-1])]  # the map is monotone: the extremes' cells
     # exclusive cumulative weight of the cells (integer counts sum faster and exactly)
     ex = np.empty(m, _F8)
     ex[0] = 0.0
@@ -631,9 +714,8 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
     res_lo = np.zeros(d.shape[0], _F8)
     res_w = np.zeros(d.shape[0], _F8)
     wmin = wmax = None
-    ends = [int(cells[imin]), int(cells[imax])]
     if heavy >= 0:  # the point mass's cell holds one value: no refining
-        hk = float_keys(x[[int(np.argmax(cells == heavy))]])[0]
+        hk = heavy_key
         at = pos == heavy
         res_k[at], res_lo[at], res_w[at] = hk, ex[heavy], hw[heavy]
         t_idx, pos = t_idx[~at], pos[~at]
@@ -646,10 +728,35 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
     par = _sorted_unique(np.concatenate((pos, np.array(ends, np.int64))))
     pidx = np.full(m, -1, np.int64)
     pidx[par] = np.arange(par.shape[0])
-    rows = np.flatnonzero(np.take(pidx >= 0, cells, out=_scratch("flags", n, bool), mode="clip"))
-    rp = pidx[cells[rows]]
     t_par = pidx[pos]
     par_c, par_h = ex[par], hw[par]
+    npar = par.shape[0]
+    cnt_par = cnt[par]
+    nrows = int(cnt_par.sum())
+    if nrows * _SORT_DIV <= n or nrows <= _FINISH_ROWS:
+        # usual case: sort the rows of those cells once and read the targets off
+        dk, dw, dpar = _refine(x, w, cells, pidx, cnt_par, nrows)
+        if wmin is None:  # the extremes' cells are the first and last parents
+            wmin = float(dw[0])
+        if wmax is None:
+            wmax = float(dw[-1])
+        dex = _exclusive_cumsum(dw)
+        first_d = np.searchsorted(dpar, np.arange(npar))
+        nd = np.bincount(dpar, minlength=npar)
+        dc = par_c[dpar] + (dex - dex[first_d][dpar])
+        if t_idx.shape[0]:
+            p = _locate(d[t_idx], dc + dw, dw, first_d[t_par], nd[t_par])
+            res_k[t_idx], res_lo[t_idx], res_w[t_idx] = dk[p], dc[p], dw[p]
+        return _entries(kmin, kmax, res_k, res_lo, res_w, wmin, wmax, total)
+    # the map left many rows in the targets' cells (values packed into a few
+    # mantissa steps): refine those cells by finer histograms, level by level
+    if _K is not None:
+        sel_rows = _scratch("select", n, np.int64)
+        rows = sel_rows[:_K.select(cells, (pidx >= 0).view(np.uint8), sel_rows)]
+    else:
+        rows = np.flatnonzero(np.take(pidx >= 0, cells, out=_scratch("flags", n, bool), mode="clip"))
+    first_mn, first_mx = first_mn[par], first_mx[par]
+    rp = pidx[cells[rows]]
     has_t = np.zeros(par.shape[0], bool)
     has_t[t_par] = True
     first = True
@@ -688,10 +795,13 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
                 p = _locate(d[t_idx], dc + dw, dw, first_d[t_par], nd[t_par])
                 res_k[t_idx], res_lo[t_idx], res_w[t_idx] = dk[p], dc[p], dw[p]
             break
-        pmn = np.full(npar, _U64_MAX, np.uint64)
-        pmx = np.zeros(npar, np.uint64)
-        np.minimum.at(pmn, rp, kr)
-        np.maximum.at(pmx, rp, kr)
+        if first_mn is not None:  # the compiled first level measured the first parents
+            pmn, pmx, first_mn = first_mn, first_mx, None
+        else:
+            pmn = np.full(npar, _U64_MAX, np.uint64)
+            pmx = np.zeros(npar, np.uint64)
+            np.minimum.at(pmn, rp, kr)
+            np.maximum.at(pmx, rp, kr)
         single = pmn == pmx
         ts = single[t_par]
         if ts.any():
@@ -735,6 +845,11 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
         rows, rp = rows[sel], ps[sel]
         par_c, par_h = sc[newpar], hs[newpar]
         has_t = np.ones(newpar.shape[0], bool)
+    return _entries(kmin, kmax, res_k, res_lo, res_w, wmin, wmax, total)
+
+
+def _entries(kmin, kmax, res_k, res_lo, res_w, wmin, wmax, total):
+    """The pruned entries: the extremes and each target's answer, one per distinct value."""
     keys = np.concatenate(([kmin], res_k, [kmax]))
     lo = np.concatenate(([0.0], res_lo, [total - wmax]))
     ww = np.concatenate(([wmin], res_w, [wmax]))
@@ -743,6 +858,29 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
         keys, lo, ww = keys[o], lo[o], ww[o]
     first_i = np.flatnonzero(np.concatenate(([True], keys[1:] != keys[:-1])))
     return key_values(keys[first_i]), lo[first_i], ww[first_i], total
+
+
+def _refine(x, w, cells, pidx, cnt_par, nrows):
+    """Distinct keys, weight sums and parent index of the rows in the flagged
+    cells (``pidx[cell] >= 0``), in key order: the compiled kernel, or numpy
+    with the same order of additions (ties in row order, np.bincount)."""
+    if _K is not None and x.flags.c_contiguous and (w is None or w.flags.c_contiguous):
+        dk = np.empty(nrows, np.uint64)
+        dw = np.empty(nrows, _F8)
+        dpar = np.empty(nrows, np.int64)
+        g = _K.refine(x, w, cells, pidx, cnt_par, dk, dw, dpar)
+        return dk[:g], dw[:g], dpar[:g]
+    rows = np.flatnonzero(np.take(pidx >= 0, cells, mode="clip"))
+    kr = float_keys(x[rows])
+    o = np.argsort(kr, kind="stable")  # parents are disjoint key ranges in order
+    ks = kr[o]
+    change = np.empty(ks.shape[0], bool)
+    change[0] = True
+    np.not_equal(ks[1:], ks[:-1], out=change[1:])
+    starts = np.flatnonzero(change)
+    gid = np.cumsum(change) - 1
+    dw = np.bincount(gid, weights=None if w is None else w[rows[o]], minlength=starts.shape[0])
+    return ks[starts], dw.astype(_F8, copy=False), pidx[cells[rows[o[starts]]]]
 
 
 def _extended(x, rmin, rmax, w, total, z):
@@ -903,8 +1041,17 @@ class Summary:
 
     @classmethod
     def _from_checked(cls, x, w, dtype="float64", capacity=None, method="auto") -> "Summary":
-        nan = np.isnan(x, out=_scratch("nan", x.shape[0], bool))
-        if nan.any():
+        stats = None
+        if _K is not None and x.flags.c_contiguous:
+            n_nan, xmin, xmax, order = _K.scan(x)  # one pass: NaNs, extremes, order
+            stats = (xmin, xmax, order)
+            has_nan = n_nan > 0
+        else:
+            nan = np.isnan(x, out=_scratch("nan", x.shape[0], bool))
+            has_nan = bool(nan.any())
+        if has_nan:
+            if stats is not None:
+                nan = np.isnan(x, out=_scratch("nan", x.shape[0], bool))
             missing_count = int(np.count_nonzero(nan))
             missing_weight = float(missing_count if w is None else w[nan].sum())
             keep = ~nan
@@ -917,10 +1064,12 @@ class Summary:
                       missing_weight=missing_weight, dtype=dtype)
         if capacity is not None and x.shape[0] > capacity + 1:
             # the direct route pays per target rank; it wins once rows outnumber them well
-            got = pruned_entries(x, w, capacity) if x.shape[0] >= _DIRECT_ROWS * capacity else None
+            got = _direct(x, w, capacity, stats) if x.shape[0] >= _DIRECT_ROWS * capacity else None
             if got is None:
                 return cls._exact_from_entries(*_exact_entries(x, w, method), **common).prune(capacity)
             xe, lo, we, total = got
+            if lo is None:  # the exact entries, found by the first level alone
+                return cls._exact_from_entries(xe, we, **common).prune(capacity)
             return cls._own(xe, lo, lo + we, we, total_weight=total, bound=1.0 / capacity,
                             exact=False, **common)
         return cls._exact_from_entries(*_exact_entries(x, w, method), **common)

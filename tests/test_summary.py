@@ -651,6 +651,7 @@ def test_capacity_refinement_levels(dist, monkeypatch, always_direct):
     import sketchmerge.summary as core
 
     monkeypatch.setattr(core, "_FINISH_ROWS", 16)
+    monkeypatch.setattr(core, "_SORT_DIV", 10**9)
     r = rng(31)
     x = DISTRIBUTIONS[dist](r, 60_000)
     w = r.integers(0, 5, 60_000).astype(np.float64)

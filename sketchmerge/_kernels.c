@@ -1,0 +1,494 @@
+/*
+ * Fused row passes of the sketch core (sketchmerge/summary.py).
+ *
+ * Each function here does in one pass over the rows what the pure numpy
+ * code in summary.py does in several, with the same integer arithmetic and
+ * the same summation order, so a summary built with these kernels is
+ * bit-for-bit the summary built without them (tests/test_kernels.py checks
+ * this on many inputs).  The kernels are optional: summary.py falls back to
+ * numpy when this extension is not built or SKETCHMERGE_KERNELS=0.
+ *
+ * Arrays come in through the buffer protocol (no numpy headers needed to
+ * build), must be C-contiguous with 8-byte items (1-byte for flags), and
+ * every loop runs without the GIL, so worker threads sketch in parallel.
+ */
+#define PY_SSIZE_T_CLEAN
+#include <Python.h>
+#include <math.h>
+#include <stdint.h>
+#include <string.h>
+
+static int
+get_buf(PyObject *obj, Py_buffer *view, Py_ssize_t itemsize, int writable, const char *name)
+{
+    int flags = PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0);
+    if (PyObject_GetBuffer(obj, view, flags) < 0)
+        return -1;
+    if (view->itemsize != itemsize || view->ndim > 1) {
+        PyErr_Format(PyExc_ValueError, "%s: expected a 1-D array of %zd-byte items", name, itemsize);
+        PyBuffer_Release(view);
+        return -1;
+    }
+    return 0;
+}
+
+static inline uint64_t
+float_key(double v)
+{
+    /* order-preserving image of the float64 bits; -0.0 and +0.0 share a key
+       (summary.float_keys, same arithmetic) */
+    int64_t i;
+    memcpy(&i, &v, 8);
+    int64_t s = i >> 63;
+    int64_t m = i & INT64_MAX;
+    uint64_t k = (uint64_t)((m ^ s) - s);
+    return k ^ (UINT64_C(1) << 63);
+}
+
+/* scan(x) -> (nan_count, vmin, vmax, order): order is 1 when the non-NaN
+   values are non-decreasing, -1 when non-increasing (and not constant), else 0. */
+static PyObject *
+k_scan(PyObject *self, PyObject *args)
+{
+    PyObject *xo;
+    if (!PyArg_ParseTuple(args, "O", &xo))
+        return NULL;
+    Py_buffer xb;
+    if (get_buf(xo, &xb, 8, 0, "x") < 0)
+        return NULL;
+    const double *x = (const double *)xb.buf;
+    Py_ssize_t n = xb.len / 8, nan = 0;
+    double vmin = NAN, vmax = NAN;
+    int asc = 1, desc = 1;
+    Py_BEGIN_ALLOW_THREADS
+    Py_ssize_t i = 0;
+    while (i < n && isnan(x[i])) {
+        nan++;
+        i++;
+    }
+    if (i < n) {
+        double prev = x[i];
+        vmin = vmax = prev;
+        for (i++; i < n; i++) {
+            double v = x[i];
+            if (isnan(v)) {
+                nan++;
+                continue;
+            }
+            asc &= v >= prev;
+            desc &= v <= prev;
+            vmin = v < vmin ? v : vmin;
+            vmax = v > vmax ? v : vmax;
+            prev = v;
+        }
+    }
+    Py_END_ALLOW_THREADS
+    PyBuffer_Release(&xb);
+    int order = asc ? 1 : (desc ? -1 : 0);
+    return Py_BuildValue("nddi", nan, vmin, vmax, order);
+}
+
+/* first_level(x, w, emin, ncell, base, heavy, cells, table)
+
+   The first-level map of summary._first_level and its histograms in one pass:
+   for each row its cell (written to cells) and, per cell c, in the four
+   8-byte words table[4c:4c+4]: the row count (int64), the weight (float64,
+   added in row order, as np.bincount does; 0 when w is None), and the
+   smallest and largest key (uint64).  One cell's words share a cache line.
+   The table is initialised here.  heavy is None or the point-mass value whose
+   cell c becomes 3c + 1 (rows below it in c go to 3c, above to 3c + 2). */
+typedef struct {
+    int64_t cnt;
+    double w;
+    uint64_t kmin, kmax;
+} cell_t;
+
+static PyObject *
+k_first_level(PyObject *self, PyObject *args)
+{
+    PyObject *xo, *wo, *nco, *bo, *ho, *co, *to;
+    long long emin;
+    if (!PyArg_ParseTuple(args, "OOLOOOOO", &xo, &wo, &emin, &nco, &bo, &ho, &co, &to))
+        return NULL;
+    int weighted = wo != Py_None, has_heavy = ho != Py_None;
+    double hv = 0.0;
+    if (has_heavy) {
+        hv = PyFloat_AsDouble(ho);
+        if (hv == -1.0 && PyErr_Occurred())
+            return NULL;
+    }
+    Py_buffer xb, wb, ncb, bb, cb, tb;
+    int got = 0;
+    PyObject *res = NULL;
+    if (get_buf(xo, &xb, 8, 0, "x") < 0)
+        goto done;
+    got = 1;
+    if (weighted && get_buf(wo, &wb, 8, 0, "w") < 0)
+        goto done;
+    got = 2;
+    if (get_buf(nco, &ncb, 8, 0, "ncell") < 0)
+        goto done;
+    got = 3;
+    if (get_buf(bo, &bb, 8, 0, "base") < 0)
+        goto done;
+    got = 4;
+    if (get_buf(co, &cb, 8, 1, "cells") < 0)
+        goto done;
+    got = 5;
+    if (get_buf(to, &tb, 8, 1, "table") < 0)
+        goto done;
+    got = 6;
+    {
+        Py_ssize_t n = xb.len / 8, ne = ncb.len / 8, m = tb.len / 32;
+        if ((weighted && wb.len != xb.len) || cb.len != xb.len || bb.len != ncb.len || ne < 1 ||
+            tb.len % 32 != 0) {
+            PyErr_SetString(PyExc_ValueError, "first_level: array lengths do not agree");
+            goto done;
+        }
+        const double *x = (const double *)xb.buf;
+        const double *w = weighted ? (const double *)wb.buf : NULL;
+        const int64_t *ncell = (const int64_t *)ncb.buf, *base = (const int64_t *)bb.buf;
+        int64_t *cells = (int64_t *)cb.buf;
+        cell_t *t = (cell_t *)tb.buf;
+        int bad = 0;
+        Py_BEGIN_ALLOW_THREADS
+        for (Py_ssize_t c = 0; c < m; c++) {
+            t[c].cnt = 0;
+            t[c].w = 0.0;
+            t[c].kmin = UINT64_MAX;
+            t[c].kmax = 0;
+        }
+        for (Py_ssize_t i = 0; i < n; i++) {
+            double v = x[i];
+            uint64_t k = float_key(v);
+            int64_t e = (int64_t)(k >> 52) - (int64_t)emin;
+            e = e < 0 ? 0 : (e >= ne ? ne - 1 : e);  /* np.take(..., mode="clip") */
+            int64_t c = (int64_t)((k >> 36) & 0xFFFF);
+            c = ((c * ncell[e]) >> 16) + base[e];
+            if (has_heavy)
+                c = 3 * c + (v >= hv) + (v > hv);
+            if (c < 0 || c >= m) {
+                bad = 1;
+                break;
+            }
+            cells[i] = c;
+            cell_t *p = t + c;
+            p->cnt += 1;
+            if (weighted)
+                p->w += w[i];
+            p->kmin = k < p->kmin ? k : p->kmin;
+            p->kmax = k > p->kmax ? k : p->kmax;
+        }
+        Py_END_ALLOW_THREADS
+        if (bad) {
+            PyErr_SetString(PyExc_ValueError, "first_level: a cell falls outside the histogram");
+            goto done;
+        }
+        res = Py_None;
+        Py_INCREF(res);
+    }
+done:
+    if (got >= 6) PyBuffer_Release(&tb);
+    if (got >= 5) PyBuffer_Release(&cb);
+    if (got >= 4) PyBuffer_Release(&bb);
+    if (got >= 3) PyBuffer_Release(&ncb);
+    if (got >= 2 && weighted) PyBuffer_Release(&wb);
+    if (got >= 1) PyBuffer_Release(&xb);
+    return res;
+}
+
+/* select(cells, flags, rows) -> count: the rows (in order) whose cell is flagged,
+   written to the front of rows (np.flatnonzero(flags[cells])). */
+static PyObject *
+k_select(PyObject *self, PyObject *args)
+{
+    PyObject *co, *fo, *ro;
+    if (!PyArg_ParseTuple(args, "OOO", &co, &fo, &ro))
+        return NULL;
+    Py_buffer cb, fb, rb;
+    if (get_buf(co, &cb, 8, 0, "cells") < 0)
+        return NULL;
+    if (get_buf(fo, &fb, 1, 0, "flags") < 0) {
+        PyBuffer_Release(&cb);
+        return NULL;
+    }
+    if (get_buf(ro, &rb, 8, 1, "rows") < 0) {
+        PyBuffer_Release(&fb);
+        PyBuffer_Release(&cb);
+        return NULL;
+    }
+    Py_ssize_t n = cb.len / 8, m = fb.len, k = 0;
+    int bad = rb.len < cb.len;
+    if (!bad) {
+        const int64_t *cells = (const int64_t *)cb.buf;
+        const uint8_t *flags = (const uint8_t *)fb.buf;
+        int64_t *rows = (int64_t *)rb.buf;
+        Py_BEGIN_ALLOW_THREADS
+        for (Py_ssize_t i = 0; i < n; i++) {
+            int64_t c = cells[i];
+            if (c < 0 || c >= m) {
+                bad = 1;
+                break;
+            }
+            rows[k] = i;
+            k += flags[c] != 0;
+        }
+        Py_END_ALLOW_THREADS
+    }
+    PyBuffer_Release(&rb);
+    PyBuffer_Release(&fb);
+    PyBuffer_Release(&cb);
+    if (bad) {
+        PyErr_SetString(PyExc_ValueError, "select: rows too short or a cell out of range");
+        return NULL;
+    }
+    return PyLong_FromSsize_t(k);
+}
+
+/* Stable sort of (key, weight) pairs by key: insertion sort for short runs,
+   bottom-up merge sort otherwise (tmp holds n pairs). */
+static void
+sort_pairs(uint64_t *k, double *w, uint64_t *tk, double *tw, Py_ssize_t n)
+{
+    const Py_ssize_t RUN = 24;
+    for (Py_ssize_t s = 0; s < n; s += RUN) {
+        Py_ssize_t e = s + RUN < n ? s + RUN : n;
+        for (Py_ssize_t i = s + 1; i < e; i++) {
+            uint64_t kv = k[i];
+            double wv = w[i];
+            Py_ssize_t j = i;
+            while (j > s && k[j - 1] > kv) {
+                k[j] = k[j - 1];
+                w[j] = w[j - 1];
+                j--;
+            }
+            k[j] = kv;
+            w[j] = wv;
+        }
+    }
+    uint64_t *ak = k, *bk = tk;
+    double *aw = w, *bw = tw;
+    for (Py_ssize_t width = RUN; width < n; width *= 2) {
+        for (Py_ssize_t lo = 0; lo < n; lo += 2 * width) {
+            Py_ssize_t mid = lo + width < n ? lo + width : n;
+            Py_ssize_t hi = lo + 2 * width < n ? lo + 2 * width : n;
+            Py_ssize_t i = lo, j = mid, o = lo;
+            while (i < mid && j < hi) {
+                if (ak[j] < ak[i]) {  /* ties take the left run first: stable */
+                    bk[o] = ak[j];
+                    bw[o++] = aw[j++];
+                } else {
+                    bk[o] = ak[i];
+                    bw[o++] = aw[i++];
+                }
+            }
+            while (i < mid) {
+                bk[o] = ak[i];
+                bw[o++] = aw[i++];
+            }
+            while (j < hi) {
+                bk[o] = ak[j];
+                bw[o++] = aw[j++];
+            }
+        }
+        uint64_t *t1 = ak; ak = bk; bk = t1;
+        double *t2 = aw; aw = bw; bw = t2;
+    }
+    if (ak != k) {
+        memcpy(k, ak, (size_t)n * 8);
+        memcpy(w, aw, (size_t)n * 8);
+    }
+}
+
+/* refine(x, w, cells, pidx, cntpar, keys, weights, parents) -> groups
+
+   The rows of the flagged first-level cells (pidx[cell] >= 0 is the cell's
+   parent index; parents are in cell order, cntpar their row counts), sorted
+   by key with ties in row order, grouped into distinct keys: keys, weight
+   sums (0.0 plus each row's weight in that order, as np.bincount adds; 1.0
+   per row when w is None) and parent of each group go to the front of the
+   three outputs (each at least sum(cntpar) long).  Returns the group count.
+   The numpy route (summary._refine) computes the same numbers. */
+static PyObject *
+k_refine(PyObject *self, PyObject *args)
+{
+    PyObject *xo, *wo, *co, *po, *cpo, *ko, *wout, *paro;
+    if (!PyArg_ParseTuple(args, "OOOOOOOO", &xo, &wo, &co, &po, &cpo, &ko, &wout, &paro))
+        return NULL;
+    int weighted = wo != Py_None;
+    Py_buffer xb, wb, cb, pb, cpb, kb, wob, parb;
+    int got = 0;
+    PyObject *res = NULL;
+    if (get_buf(xo, &xb, 8, 0, "x") < 0)
+        goto done;
+    got = 1;
+    if (weighted && get_buf(wo, &wb, 8, 0, "w") < 0)
+        goto done;
+    got = 2;
+    if (get_buf(co, &cb, 8, 0, "cells") < 0)
+        goto done;
+    got = 3;
+    if (get_buf(po, &pb, 8, 0, "pidx") < 0)
+        goto done;
+    got = 4;
+    if (get_buf(cpo, &cpb, 8, 0, "cntpar") < 0)
+        goto done;
+    got = 5;
+    if (get_buf(ko, &kb, 8, 1, "keys") < 0)
+        goto done;
+    got = 6;
+    if (get_buf(wout, &wob, 8, 1, "weights") < 0)
+        goto done;
+    got = 7;
+    if (get_buf(paro, &parb, 8, 1, "parents") < 0)
+        goto done;
+    got = 8;
+    {
+        Py_ssize_t n = xb.len / 8, m = pb.len / 8, npar = cpb.len / 8;
+        const int64_t *cntpar = (const int64_t *)cpb.buf;
+        Py_ssize_t total = 0;
+        for (Py_ssize_t p = 0; p < npar; p++)
+            total += cntpar[p];
+        if ((weighted && wb.len != xb.len) || cb.len != xb.len || kb.len / 8 < total ||
+            wob.len / 8 < total || parb.len / 8 < total) {
+            PyErr_SetString(PyExc_ValueError, "refine: array lengths do not agree");
+            goto done;
+        }
+        const double *x = (const double *)xb.buf;
+        const double *w = weighted ? (const double *)wb.buf : NULL;
+        const int64_t *cells = (const int64_t *)cb.buf, *pidx = (const int64_t *)pb.buf;
+        uint64_t *gk = (uint64_t *)kb.buf;
+        double *gw = (double *)wob.buf;
+        int64_t *gp = (int64_t *)parb.buf;
+        Py_ssize_t groups = 0;
+        int bad = 0;
+        Py_BEGIN_ALLOW_THREADS
+        Py_ssize_t *pos = (Py_ssize_t *)PyMem_RawMalloc((size_t)(npar + 1) * sizeof(Py_ssize_t));
+        uint64_t *bk = (uint64_t *)PyMem_RawMalloc((size_t)(2 * total + 1) * 8);
+        double *bw = (double *)PyMem_RawMalloc((size_t)(2 * total + 1) * 8);
+        if (pos == NULL || bk == NULL || bw == NULL) {
+            bad = 2;
+        } else {
+            Py_ssize_t acc = 0;
+            for (Py_ssize_t p = 0; p < npar; p++) {
+                pos[p] = acc;
+                acc += cntpar[p];
+            }
+            pos[npar] = acc;
+            for (Py_ssize_t i = 0; i < n && !bad; i++) {
+                int64_t c = cells[i];
+                if (c < 0 || c >= m) {
+                    bad = 1;
+                    break;
+                }
+                int64_t p = pidx[c];
+                if (p >= 0) {
+                    if (p >= npar) {
+                        bad = 1;
+                        break;
+                    }
+                    Py_ssize_t j = pos[p]++;
+                    if (j >= total) {
+                        bad = 1;
+                        break;
+                    }
+                    bk[j] = float_key(x[i]);
+                    bw[j] = weighted ? w[i] : 1.0;
+                }
+            }
+            if (!bad) {
+                Py_ssize_t start = 0;
+                for (Py_ssize_t p = 0; p < npar; p++) {
+                    Py_ssize_t end = start + cntpar[p];
+                    if (pos[p] != end) {
+                        bad = 1;
+                        break;
+                    }
+                    Py_ssize_t len = end - start;
+                    if (len > 1)
+                        sort_pairs(bk + start, bw + start, bk + total, bw + total, len);
+                    for (Py_ssize_t j = start; j < end; j++) {
+                        if (j == start || bk[j] != bk[j - 1]) {
+                            gk[groups] = bk[j];
+                            gw[groups] = 0.0;
+                            gp[groups] = p;
+                            groups++;
+                        }
+                        gw[groups - 1] += bw[j];
+                    }
+                    start = end;
+                }
+            }
+        }
+        PyMem_RawFree(pos);
+        PyMem_RawFree(bk);
+        PyMem_RawFree(bw);
+        Py_END_ALLOW_THREADS
+        if (bad == 2) {
+            PyErr_NoMemory();
+            goto done;
+        }
+        if (bad) {
+            PyErr_SetString(PyExc_ValueError, "refine: cells, pidx and cntpar do not agree");
+            goto done;
+        }
+        res = PyLong_FromSsize_t(groups);
+    }
+done:
+    if (got >= 8) PyBuffer_Release(&parb);
+    if (got >= 7) PyBuffer_Release(&wob);
+    if (got >= 6) PyBuffer_Release(&kb);
+    if (got >= 5) PyBuffer_Release(&cpb);
+    if (got >= 4) PyBuffer_Release(&pb);
+    if (got >= 3) PyBuffer_Release(&cb);
+    if (got >= 2 && weighted) PyBuffer_Release(&wb);
+    if (got >= 1) PyBuffer_Release(&xb);
+    return res;
+}
+
+/* weights_ok(w) -> index of the first weight that is NaN, infinite or negative, or -1. */
+static PyObject *
+k_weights_ok(PyObject *self, PyObject *args)
+{
+    PyObject *wo;
+    if (!PyArg_ParseTuple(args, "O", &wo))
+        return NULL;
+    Py_buffer wb;
+    if (get_buf(wo, &wb, 8, 0, "w") < 0)
+        return NULL;
+    const double *w = (const double *)wb.buf;
+    Py_ssize_t n = wb.len / 8, bad = -1;
+    Py_BEGIN_ALLOW_THREADS
+    for (Py_ssize_t i = 0; i < n; i++) {
+        double v = w[i];
+        if (!(v >= 0.0 && v < INFINITY)) {
+            bad = i;
+            break;
+        }
+    }
+    Py_END_ALLOW_THREADS
+    PyBuffer_Release(&wb);
+    return PyLong_FromSsize_t(bad);
+}
+
+static PyMethodDef methods[] = {
+    {"scan", k_scan, METH_VARARGS, "scan(x) -> (nan_count, vmin, vmax, order)"},
+    {"first_level", k_first_level, METH_VARARGS,
+     "first_level(x, w, emin, ncell, base, heavy, cells, table)"},
+    {"select", k_select, METH_VARARGS, "select(cells, flags, rows) -> count"},
+    {"refine", k_refine, METH_VARARGS,
+     "refine(x, w, cells, pidx, cntpar, keys, weights, parents) -> groups"},
+    {"weights_ok", k_weights_ok, METH_VARARGS, "weights_ok(w) -> first bad index or -1"},
+    {NULL, NULL, 0, NULL},
+};
+
+static struct PyModuleDef module = {
+    PyModuleDef_HEAD_INIT, "sketchmerge._kernels",
+    "Fused row passes of the sketch core (optional; see summary.py).", -1, methods,
+};
+
+PyMODINIT_FUNC
+PyInit__kernels(void)
+{
+    return PyModule_Create(&module);
+}

@@ -1,0 +1,139 @@
+"""The optional compiled kernels (sketchmerge/_kernels.c) against the numpy code paths.
+
+A summary built with the kernels must be the summary built without them, bit for
+bit: same entries, same rank sums, same totals (the kernels repeat numpy's
+order of additions).  Both are also checked against "exact summary, then
+prune" (the definition of the direct construction) and, for the scan kernel,
+against numpy's own nan-aware reductions (a reference library).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+import sketchmerge.summary as core
+from sketchmerge import Summary
+
+pytestmark = pytest.mark.skipif(core._K is None, reason="compiled kernels not built")
+
+
+def _dists(r, n):
+    return {
+        "normal": r.normal(20, 5, n),
+        "lognormal": r.lognormal(3, 2, n),
+        "zeros90": np.where(r.random(n) < 0.9, 0.0, r.exponential(40, n)),
+        "rounded": np.round(r.gamma(2, 5, n), 1),
+        "small_ints": r.integers(0, 300, n).astype(float),
+        "with_nan": np.where(r.random(n) < 0.02, np.nan, r.normal(size=n)),
+        "signed_zeros": np.where(r.random(n) < 0.3, -0.0, r.normal(size=n)),
+        "cauchy": r.standard_cauchy(n),
+        "with_inf": np.where(r.random(n) < 0.01, np.inf, r.normal(size=n)),
+        "two_values": r.choice([1.0, 2.0], n),
+        "sorted": np.sort(r.normal(size=n)),
+        "half_one_value": np.concatenate([r.normal(size=n // 2), np.full(n - n // 2, 3.25)]),
+        "subnormal_scale": r.normal(size=n) * 1e-310,
+        "narrow": 1e6 + r.random(n) * 1e-6,  # a few mantissa steps: refinement levels
+    }
+
+
+def _same(a: Summary, b: Summary) -> bool:
+    return (np.array_equal(a.values, b.values) and np.array_equal(a.rmin, b.rmin)
+            and np.array_equal(a.rmax, b.rmax) and np.array_equal(a.weights, b.weights)
+            and a.total_weight == b.total_weight and a.is_exact == b.is_exact
+            and a.bound == b.bound and a.count == b.count
+            and a.missing_count == b.missing_count and a.missing_weight == b.missing_weight)
+
+
+@pytest.fixture
+def without_kernels(monkeypatch):
+    def build(x, w, cap):
+        with monkeypatch.context() as m:
+            m.setattr(core, "_K", None)
+            return Summary.from_values(x, w, capacity=cap)
+    return build
+
+
+@pytest.mark.parametrize("n", [60_000, 250_000])
+@pytest.mark.parametrize("weighting", ["unit", "float", "zero_or_one"])
+def test_kernels_give_the_numpy_summary_bit_for_bit(n, weighting, without_kernels):
+    r = np.random.default_rng(n)
+    w = {"unit": None, "float": r.gamma(2, 1, n),
+         "zero_or_one": np.where(r.random(n) < 0.3, 0.0, 1.0)}[weighting]
+    for name, x in _dists(r, n).items():
+        for cap in (2049, 300):
+            a = Summary.from_values(x, w, capacity=cap)
+            b = without_kernels(x, w, cap)
+            assert _same(a, b), (name, cap)
+            ref = Summary.from_values(x, w).prune(cap)  # the definition
+            np.testing.assert_array_equal(a.values, ref.values, err_msg=name)
+            np.testing.assert_allclose(a.rmin, ref.rmin, rtol=1e-12, atol=1e-9 * a.total_weight)
+            assert a.is_exact == ref.is_exact and a.epsilon <= a.bound
+
+
+def test_refinement_levels_with_kernels(monkeypatch, without_kernels):
+    # cells holding most rows take the histogram levels instead of one sort
+    monkeypatch.setattr(core, "_SORT_DIV", 10**9)
+    monkeypatch.setattr(core, "_FINISH_ROWS", 16)
+    r = np.random.default_rng(8)
+    x = r.lognormal(1, 1, 80_000)
+    w = r.integers(0, 4, 80_000).astype(float)
+    a = Summary.from_values(x, w, capacity=500)
+    assert _same(a, without_kernels(x, w, 500))
+    assert a == Summary.from_values(x, w).prune(500)
+
+
+def test_scan_against_numpy_reductions():
+    r = np.random.default_rng(2)
+    cases = [r.normal(size=1000), np.sort(r.normal(size=1000)), np.sort(r.normal(size=1000))[::-1].copy(),
+             np.where(r.random(1000) < 0.1, np.nan, r.normal(size=1000)), np.full(10, 2.0),
+             np.array([np.nan, np.nan]), np.array([1.0, np.nan, 0.5]), np.array([-0.0, 0.0, -0.0]),
+             np.array([np.nan, 1.0, np.nan, 2.0, 3.0])]
+    for x in cases:
+        nan, lo, hi, order = core._K.scan(x)
+        assert nan == int(np.isnan(x).sum())
+        ok = x[~np.isnan(x)]
+        if ok.size == 0:
+            assert np.isnan(lo) and np.isnan(hi)
+            continue
+        assert lo == np.nanmin(x) and hi == np.nanmax(x)
+        expect = 1 if np.all(ok[1:] >= ok[:-1]) else (-1 if np.all(ok[1:] <= ok[:-1]) else 0)
+        assert order == expect
+
+
+def test_weights_ok_finds_the_first_bad_weight():
+    w = np.ones(100)
+    assert core._K.weights_ok(w) == -1
+    for bad in (-1.0, np.nan, np.inf):
+        v = w.copy()
+        v[[37, 60]] = bad
+        assert core._K.weights_ok(v) == 37
+    assert core._K.weights_ok(np.array([-0.0, 0.0])) == -1  # -0.0 >= 0: an allowed zero
+
+
+def test_kernels_refuse_mismatched_arrays():
+    x = np.arange(10.0)
+    with pytest.raises(ValueError, match="lengths"):
+        core._K.first_level(x, np.ones(9), 0, np.ones(1, np.int64), np.zeros(1, np.int64), None,
+                            np.empty(10, np.int64), np.empty(40, np.uint64))
+    with pytest.raises(ValueError, match="outside"):  # a cell beyond the table
+        core._K.first_level(x, None, 0, np.full(1, 1 << 20, np.int64), np.zeros(1, np.int64), None,
+                            np.empty(10, np.int64), np.empty(4, np.uint64))
+    with pytest.raises(ValueError):
+        core._K.scan(np.arange(10, dtype=np.int32))  # 4-byte items
+    with pytest.raises(ValueError, match="agree"):  # cntpar says fewer rows than flagged
+        core._K.refine(x, None, np.zeros(10, np.int64), np.zeros(1, np.int64), np.array([3]),
+                       np.empty(3, np.uint64), np.empty(3), np.empty(3, np.int64))
+
+
+def test_kernels_run_in_threads_without_the_gil():
+    # the kernels release the GIL: summaries built in threads equal serial ones
+    from concurrent.futures import ThreadPoolExecutor
+
+    r = np.random.default_rng(5)
+    cols = [r.lognormal(0, 1 + i / 4, 200_000) for i in range(4)]
+    w = r.gamma(2, 1, 200_000)
+    serial = [Summary.from_values(c, w, capacity=2049) for c in cols]
+    with ThreadPoolExecutor(4) as ex:
+        threaded = list(ex.map(lambda c: Summary.from_values(c, w, capacity=2049), cols))
+    assert all(_same(a, b) for a, b in zip(serial, threaded))
