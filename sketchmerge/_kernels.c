@@ -446,6 +446,75 @@ done:
     return res;
 }
 
+/* compact(x, w, xout, wout, wmiss) -> kept: the non-NaN values of x (and their
+   weights) in order to the front of xout (wout); the weights of the NaN rows,
+   in order, to the front of wmiss (np.sum of them is numpy's w[isnan(x)].sum()).
+   w, wout and wmiss are None for unweighted data. */
+static PyObject *
+k_compact(PyObject *self, PyObject *args)
+{
+    PyObject *xo, *wo, *xoo, *woo, *wmo;
+    if (!PyArg_ParseTuple(args, "OOOOO", &xo, &wo, &xoo, &woo, &wmo))
+        return NULL;
+    int weighted = wo != Py_None;
+    Py_buffer xb, wb, xob, wob, wmb;
+    int got = 0;
+    PyObject *res = NULL;
+    if (get_buf(xo, &xb, 8, 0, "x") < 0)
+        goto done;
+    got = 1;
+    if (weighted && get_buf(wo, &wb, 8, 0, "w") < 0)
+        goto done;
+    got = 2;
+    if (get_buf(xoo, &xob, 8, 1, "xout") < 0)
+        goto done;
+    got = 3;
+    if (weighted && get_buf(woo, &wob, 8, 1, "wout") < 0)
+        goto done;
+    got = 4;
+    if (weighted && get_buf(wmo, &wmb, 8, 1, "wmiss") < 0)
+        goto done;
+    got = 5;
+    {
+        Py_ssize_t n = xb.len / 8, k = 0, j = 0;
+        if (xob.len < xb.len || (weighted && (wb.len != xb.len || wob.len < xb.len || wmb.len < xb.len))) {
+            PyErr_SetString(PyExc_ValueError, "compact: array lengths do not agree");
+            goto done;
+        }
+        const double *x = (const double *)xb.buf;
+        double *xout = (double *)xob.buf;
+        Py_BEGIN_ALLOW_THREADS
+        if (weighted) {
+            const double *w = (const double *)wb.buf;
+            double *wout = (double *)wob.buf, *wmiss = (double *)wmb.buf;
+            for (Py_ssize_t i = 0; i < n; i++) {
+                double v = x[i];
+                if (isnan(v)) {
+                    wmiss[j++] = w[i];
+                } else {
+                    xout[k] = v;
+                    wout[k++] = w[i];
+                }
+            }
+        } else {
+            for (Py_ssize_t i = 0; i < n; i++) {
+                double v = x[i];
+                xout[k] = v;
+                k += !isnan(v);
+            }
+        }
+        Py_END_ALLOW_THREADS
+        res = PyLong_FromSsize_t(k);
+    }
+done:
+    if (got >= 5 && weighted) PyBuffer_Release(&wmb);
+    if (got >= 4 && weighted) PyBuffer_Release(&wob);
+    if (got >= 3) PyBuffer_Release(&xob);
+    if (got >= 2 && weighted) PyBuffer_Release(&wb);
+    if (got >= 1) PyBuffer_Release(&xb);
+    return res;
+}
+
 /* weights_ok(w) -> index of the first weight that is NaN, infinite or negative, or -1. */
 static PyObject *
 k_weights_ok(PyObject *self, PyObject *args)
@@ -478,6 +547,7 @@ static PyMethodDef methods[] = {
     {"select", k_select, METH_VARARGS, "select(cells, flags, rows) -> count"},
     {"refine", k_refine, METH_VARARGS,
      "refine(x, w, cells, pidx, cntpar, keys, weights, parents) -> groups"},
+    {"compact", k_compact, METH_VARARGS, "compact(x, w, xout, wout, wmiss) -> kept"},
     {"weights_ok", k_weights_ok, METH_VARARGS, "weights_ok(w) -> first bad index or -1"},
     {NULL, NULL, 0, NULL},
 };

@@ -697,11 +697,24 @@ def _direct(x, w, capacity, stats=None):
     emin, ncell, base, size, heavy_key = _first_map(x, w, n, xmin, xmax)
     cells, m, heavy, cnt, hw, first_mn, first_mx = _first_level(x, w, n, emin, ncell, base, size, heavy_key)
     occ = np.flatnonzero(cnt)
-    if bool(np.array_equal(first_mn[occ], first_mx[occ])):
+    multi = occ[first_mn[occ] != first_mx[occ]]
+    if multi.shape[0] == 0:
         # every occupied cell holds one value: the histogram is the exact summary
         return key_values(first_mn[occ]), None, (cnt[occ] if w is None else hw[occ]), total
-    if occ.shape[0] <= b + 1:  # few distinct values: the exact methods, and it may stay exact
-        return None
+    if occ.shape[0] <= b + 1:
+        # few occupied cells: few distinct values, and the summary may stay exact. Sort the
+        # rows of the cells holding several values (when they are few) for the exact entries.
+        nmulti = int(cnt[multi].sum())
+        if nmulti * _SORT_DIV > n and nmulti > _FINISH_ROWS:
+            return None  # the exact methods
+        pidx = np.full(m, -1, np.int64)
+        pidx[multi] = np.arange(multi.shape[0])
+        dk, dw, _ = _refine(x, w, cells, pidx, cnt[multi], nmulti)
+        one = occ[first_mn[occ] == first_mx[occ]]
+        keys = np.concatenate((first_mn[one], dk))
+        wts = np.concatenate(((cnt[one] if w is None else hw[one]).astype(_F8), dw))
+        o = np.argsort(keys)  # distinct keys: cells are disjoint key ranges
+        return key_values(keys[o]), None, wts[o], total
     ends = [int(occ[0]), int(occ[-1])]  # the map is monotone: the extremes' cells
     # exclusive cumulative weight of the cells (integer counts sum faster and exactly)
     ex = np.empty(m, _F8)
@@ -1049,7 +1062,17 @@ class Summary:
         else:
             nan = np.isnan(x, out=_scratch("nan", x.shape[0], bool))
             has_nan = bool(nan.any())
-        if has_nan:
+        if has_nan and stats is not None and (w is None or w.flags.c_contiguous):
+            n = x.shape[0]
+            xk = _scratch("kept_x", n, _F8)
+            wk = None if w is None else _scratch("kept_w", n, _F8)
+            wm = None if w is None else _scratch("missing_w", n, _F8)
+            kept = _K.compact(x, w, xk, wk, wm)
+            missing_count = n - kept
+            missing_weight = float(missing_count if w is None else np.sum(wm[:missing_count]))
+            x = xk[:kept]
+            w = None if w is None else wk[:kept]
+        elif has_nan:
             if stats is not None:
                 nan = np.isnan(x, out=_scratch("nan", x.shape[0], bool))
             missing_count = int(np.count_nonzero(nan))

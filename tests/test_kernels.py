@@ -137,3 +137,31 @@ def test_kernels_run_in_threads_without_the_gil():
     with ThreadPoolExecutor(4) as ex:
         threaded = list(ex.map(lambda c: Summary.from_values(c, w, capacity=2049), cols))
     assert all(_same(a, b) for a, b in zip(serial, threaded))
+
+
+def test_results_of_columns_with_missing_values_are_not_scratch():
+    # NaN rows are compacted into per-thread scratch buffers: summaries must not alias them
+    r = np.random.default_rng(9)
+    x = np.where(r.random(100_000) < 0.05, np.nan, r.normal(size=100_000))
+    w = r.gamma(2, 1, 100_000)
+    for cap in (None, 500):  # exact and direct routes
+        a = Summary.from_values(x, w, capacity=cap)
+        keep = [np.array(v) for v in (a.values, a.rmin, a.rmax, a.weights)]
+        Summary.from_values(r.normal(size=100_000) * 7, w, capacity=cap)
+        for v, k in zip((a.values, a.rmin, a.rmax, a.weights), keep):
+            np.testing.assert_array_equal(v, k)
+        assert a.missing_count == int(np.isnan(x).sum())
+        assert a.missing_weight == w[np.isnan(x)].sum()  # numpy's own sum, bit for bit
+
+
+def test_few_distinct_values_in_shared_cells_stay_exact(without_kernels):
+    # rare tail values share first-level cells: those cells are sorted, and with at most
+    # capacity + 1 distinct values the summary stays exact (numpy's unique as reference)
+    r = np.random.default_rng(10)
+    x = np.round(np.concatenate([r.gamma(2, 4, 200_000), r.uniform(100, 1000, 300)]), 1)
+    u, c = np.unique(x, return_counts=True)
+    s = Summary.from_values(x, capacity=u.size)
+    assert s.is_exact and np.array_equal(s.values, u) and np.array_equal(s.weights, c)
+    assert _same(s, without_kernels(x, None, u.size))
+    p = Summary.from_values(x, capacity=u.size // 2)
+    assert _same(p, Summary.from_values(x).prune(u.size // 2))
