@@ -95,8 +95,9 @@ k_scan(PyObject *self, PyObject *args)
    8-byte words table[4c:4c+4]: the row count (int64), the weight (float64,
    added in row order, as np.bincount does; 0 when w is None), and the
    smallest and largest key (uint64).  One cell's words share a cache line.
-   The table is initialised here.  heavy is None or the point-mass value whose
-   cell c becomes 3c + 1 (rows below it in c go to 3c, above to 3c + 2). */
+   The table is initialised here.  heavy is None or (value, c) for a point
+   mass in cell c: rows below it stay in c, the value gets c + 1, rows above it
+   c + 2, and every later cell moves up by 2. */
 typedef struct {
     int64_t cnt;
     double w;
@@ -112,10 +113,10 @@ k_first_level(PyObject *self, PyObject *args)
         return NULL;
     int weighted = wo != Py_None, has_heavy = ho != Py_None;
     double hv = 0.0;
-    if (has_heavy) {
-        hv = PyFloat_AsDouble(ho);
-        if (hv == -1.0 && PyErr_Occurred())
-            return NULL;
+    long long hc = -1;
+    if (has_heavy && !PyArg_ParseTuple(ho, "dL", &hv, &hc)) {
+        PyErr_SetString(PyExc_TypeError, "first_level: heavy must be None or (value, cell)");
+        return NULL;
     }
     Py_buffer xb, wb, ncb, bb, cb, tb;
     int got = 0;
@@ -165,8 +166,8 @@ k_first_level(PyObject *self, PyObject *args)
             e = e < 0 ? 0 : (e >= ne ? ne - 1 : e);  /* np.take(..., mode="clip") */
             int64_t c = (int64_t)((k >> 36) & 0xFFFF);
             c = ((c * ncell[e]) >> 16) + base[e];
-            if (has_heavy)
-                c = 3 * c + (v >= hv) + (v > hv);
+            if (has_heavy)  /* split the point mass's cell in three (summary._first_cells) */
+                c += c > hc ? 2 : (c == hc ? (v >= hv) + (v > hv) : 0);
             if (c < 0 || c >= m) {
                 bad = 1;
                 break;
@@ -447,9 +448,10 @@ done:
 }
 
 /* compact(x, w, xout, wout, wmiss) -> kept: the non-NaN values of x (and their
-   weights) in order to the front of xout (wout); the weights of the NaN rows,
-   in order, to the front of wmiss (np.sum of them is numpy's w[isnan(x)].sum()).
-   w, wout and wmiss are None for unweighted data. */
+   weights) in order into xout (wout); the weights of the NaN rows, in order,
+   into wmiss (np.sum of them is numpy's w[isnan(x)].sum()).  Each output must
+   be exactly as long as what it receives.  w, wout and wmiss are None for
+   unweighted data. */
 static PyObject *
 k_compact(PyObject *self, PyObject *args)
 {
@@ -477,11 +479,16 @@ k_compact(PyObject *self, PyObject *args)
     got = 5;
     {
         Py_ssize_t n = xb.len / 8, k = 0, j = 0;
-        if (xob.len < xb.len || (weighted && (wb.len != xb.len || wob.len < xb.len || wmb.len < xb.len))) {
+        const double *x = (const double *)xb.buf;
+        Py_ssize_t nan = 0;
+        for (Py_ssize_t i = 0; i < n; i++)
+            nan += isnan(x[i]) != 0;
+        /* outputs hold exactly the kept rows (xout, wout) and the NaN rows (wmiss) */
+        if (xob.len / 8 != n - nan || (weighted && (wb.len != xb.len || wob.len / 8 != n - nan ||
+                                                    wmb.len / 8 != nan))) {
             PyErr_SetString(PyExc_ValueError, "compact: array lengths do not agree");
             goto done;
         }
-        const double *x = (const double *)xb.buf;
         double *xout = (double *)xob.buf;
         Py_BEGIN_ALLOW_THREADS
         if (weighted) {
@@ -499,8 +506,8 @@ k_compact(PyObject *self, PyObject *args)
         } else {
             for (Py_ssize_t i = 0; i < n; i++) {
                 double v = x[i];
-                xout[k] = v;
-                k += !isnan(v);
+                if (!isnan(v))
+                    xout[k++] = v;
             }
         }
         Py_END_ALLOW_THREADS

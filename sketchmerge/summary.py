@@ -556,15 +556,18 @@ def _first_cells(x, n, emin, ncell, base, size, heavy):
     heavy_cell = -1
     if heavy is not None:
         hv = float(key_values(heavy))
+        hcell = _heavy_cell(heavy, emin, ncell, base) - 1
         flag = _scratch("flags", n, bool)
-        # the heavy value's cell c becomes 3c + 1; rows below it in c go to 3c, above to 3c + 2
-        np.multiply(cells, 3, out=cells)
-        np.add(cells, np.greater_equal(x, hv, out=flag), out=cells, casting="unsafe")
-        np.add(cells, np.greater(x, hv, out=flag), out=cells, casting="unsafe")
-        he = (int(heavy) >> 52) - emin
-        hcell = int(base[he] + ((((int(heavy) >> 36) & 0xFFFF) * int(ncell[he])) >> 16))
-        heavy_cell = 3 * hcell + 1
-        size *= 3
+        # the heavy value's cell c splits in three: rows below it stay in c, the value
+        # itself gets c + 1, rows above it c + 2; later cells move up by 2
+        np.greater(cells, hcell, out=flag)
+        np.add(cells, flag, out=cells, casting="unsafe")
+        np.add(cells, flag, out=cells, casting="unsafe")
+        at = np.flatnonzero(cells == hcell)
+        xa = x[at]
+        cells[at] += (xa >= hv).astype(np.int64) + (xa > hv)
+        heavy_cell = hcell + 1
+        size += 2
     return cells, size, heavy_cell
 
 
@@ -577,16 +580,16 @@ def _first_level(x, w, n, emin, ncell, base, size, heavy_key):
     computes the same numbers (np.bincount also sums in row order).
     """
     if _K is not None and x.flags.c_contiguous and (w is None or w.flags.c_contiguous):
-        m = size * 3 if heavy_key is not None else size
+        m = size + 2 if heavy_key is not None else size
         heavy = _heavy_cell(heavy_key, emin, ncell, base) if heavy_key is not None else -1
         cells = _scratch("cells", n, np.int64)
         table = _scratch("table", 4 * m, np.uint64).reshape(m, 4)  # row c: a cell's count, weight, key range
         _K.first_level(x, w, emin, ncell, base,
-                       None if heavy_key is None else float(key_values(heavy_key)),
+                       None if heavy_key is None else (float(key_values(heavy_key)), heavy - 1),
                        cells, table.reshape(-1))
-        table = table.T.copy()
-        cnt, kmin, kmax = table[0].view(np.int64), table[2], table[3]
-        hw = None if w is None else table[1].view(_F8)
+        # strided views of the scratch table; every later use copies what it keeps
+        cnt, kmin, kmax = table[:, 0].view(np.int64), table[:, 2], table[:, 3]
+        hw = None if w is None else table[:, 1].view(_F8)
     else:
         cells, m, heavy = _first_cells(x, n, emin, ncell, base, size, heavy_key)
         cnt = np.bincount(cells, minlength=m)
@@ -667,9 +670,9 @@ def pruned_entries(x: np.ndarray, w: np.ndarray | None, capacity: int):
 
 
 def _heavy_cell(heavy, emin, ncell, base) -> int:
-    """The point mass's own first-level cell (see :func:`_first_level`)."""
+    """The point mass's own first-level cell (see :func:`_first_cells`)."""
     he = (int(heavy) >> 52) - emin
-    return 3 * int(base[he] + ((((int(heavy) >> 36) & 0xFFFF) * int(ncell[he])) >> 16)) + 1
+    return int(base[he] + ((((int(heavy) >> 36) & 0xFFFF) * int(ncell[he])) >> 16)) + 1
 
 
 def _direct(x, w, capacity, stats=None):
@@ -1064,14 +1067,13 @@ class Summary:
             has_nan = bool(nan.any())
         if has_nan and stats is not None and (w is None or w.flags.c_contiguous):
             n = x.shape[0]
-            xk = _scratch("kept_x", n, _F8)
-            wk = None if w is None else _scratch("kept_w", n, _F8)
-            wm = None if w is None else _scratch("missing_w", n, _F8)
-            kept = _K.compact(x, w, xk, wk, wm)
-            missing_count = n - kept
-            missing_weight = float(missing_count if w is None else np.sum(wm[:missing_count]))
-            x = xk[:kept]
-            w = None if w is None else wk[:kept]
+            xk = _scratch("kept_x", n - n_nan, _F8)
+            wk = None if w is None else _scratch("kept_w", n - n_nan, _F8)
+            wm = None if w is None else np.empty(n_nan, _F8)
+            _K.compact(x, w, xk, wk, wm)
+            missing_count = n_nan
+            missing_weight = float(missing_count if w is None else np.sum(wm))
+            x, w = xk, wk
         elif has_nan:
             if stats is not None:
                 nan = np.isnan(x, out=_scratch("nan", x.shape[0], bool))
