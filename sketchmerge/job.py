@@ -366,9 +366,11 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
     -------
     dict
         The build report: ``version``, ``changed``, ``partitions_total``,
-        ``partitions_sketched``, ``partitions_reused``, ``rows``, ``features``
-        (per feature ``name``, ``edges_count``, ``rank_error``, ``missing_weight``
-        and more), ``skipped``, ``seconds``.
+        ``partitions_sketched``, ``partitions_reused``, ``files`` (``total``,
+        ``metadata_read``: files whose footer or header was read,
+        ``planned_from_previous``: files planned from the current version's stored
+        plan), ``rows``, ``features`` (per feature ``name``, ``edges_count``,
+        ``rank_error``, ``missing_weight`` and more), ``skipped``, ``seconds``.
     """
     from .sources import _secret_values, open_dataset, redact, select_features
     from .store import TableStore
@@ -380,11 +382,34 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
                               fan_in=fan_in))
     so = dict(storage_options or {})
     tso = dict(table_storage_options if table_storage_options is not None else so)
+    table: dict = {}
+
+    def stored_plan():
+        # called by open_dataset once the source is listed, so that a bad source is
+        # reported before the table is touched; the current version's stored plan spares
+        # the footer reads of unchanged files, and --full plans every file from its metadata
+        if not table:
+            table["store"] = st = TableStore(out, storage_options=tso or None)
+            table["current"] = cur = st.current()
+            table["doc"] = table["previous"] = None
+            if cur is not None:
+                try:
+                    table["doc"] = st.read_version(cur)[1]
+                    table["previous"] = decode_table(table["doc"])
+                except FormatError as e:
+                    log.warning("current version %s of %s is unreadable (%s); building in full",
+                                cur, st.url, e)
+        prev = table["previous"]
+        return prev.content if prev is not None and not full else None
+
     # listing and footer reads run on the driver: a transient failure there is retried
     # like one inside a task, instead of failing the whole build
     ds = with_retries(lambda: open_dataset(source, fmt=format, storage_options=so or None,
-                                           byte_budget=int(config.get("byte_budget", byte_budget))),
+                                           byte_budget=int(config.get("byte_budget", byte_budget)),
+                                           previous=stored_plan),
                       f"listing {redact(str(source), _secret_values(so))}")
+    stored_plan()
+    store, current, current_doc, previous = (table[k] for k in ("store", "current", "doc", "previous"))
     for role, col in (("weight", weight_column), ("prediction", prediction_column),
                       ("label", label_column)):
         if col and col not in ds.columns:
@@ -399,7 +424,6 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
     if not features:
         raise InputError(f"no numeric or boolean feature columns to sketch in {ds.source}")
 
-    store = TableStore(out, storage_options=tso or None)
     units = sorted(ds.units, key=lambda u: u.address)
     addresses = [u.address for u in units]
     # the leaf capacity depends only on the rank error, so it can be fixed first
@@ -415,14 +439,6 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
     oh = spec.options_hash()
     leaf_keys = [hashlib.sha256(f"unit|{oh}|{u.fingerprint}".encode()).hexdigest() for u in units]
     plan = plan_tree(leaf_keys, addresses, o["fan_in"], o["rank_error"], oh)
-    current = store.current()
-    previous = None
-    if current is not None:
-        try:
-            current_doc = store.read_version(current)[1]
-            previous = decode_table(current_doc)
-        except FormatError as e:
-            log.warning("current version %s of %s is unreadable (%s); building in full", current, store.url, e)
 
     # reuse only blobs the current version's manifest names: gc never deletes those, while an
     # unreferenced blob (say, from a build that died before publishing) may vanish under a
@@ -489,11 +505,14 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
     content = {"source": redact(ds.source), "options": options, "rows": rows, "root": root or "",
                "skipped": skipped,
                "units": {"address": addresses, "fingerprint": [u.fingerprint for u in units],
-                         "rows": [int(u.rows) for u in units], "nbytes": [int(u.nbytes) for u in units]}}
+                         "rows": [int(u.rows) for u in units], "nbytes": [int(u.nbytes) for u in units]},
+               "plan": ds.plan_record()}
     report = {
         "table": store.url, "source": redact(ds.source),
         "partitions_total": len(units), "partitions_sketched": len(sketch),
         "partitions_reused": reused_leaves, "rows": rows,
+        "files": {"total": len(ds.files), "metadata_read": ds.metadata_reads,
+                  "planned_from_previous": ds.plan_reused},
         "features": [dict(f.info(), edges_count=int(f.edges.size)) for f in feats],
         "skipped": skipped,
     }
@@ -550,14 +569,31 @@ def _created() -> str:
     return time.strftime("%Y-%m-%dT%H:%M:%SZ", t)
 
 
+def _read_base(store, version):
+    """The cut table of ``version`` (None for none, or when it cannot be decoded)."""
+    if version is None:
+        return None
+    try:
+        return decode_table(store.read_version(version)[1])
+    except FormatError as e:
+        log.warning("version %s of %s is unreadable (%s); counting every unit as added",
+                    version, store.url, e)
+        return None
+
+
 def _publish(store, feats, content, previous, units, plan, o) -> tuple[int, bytes]:
     attempts = int(config.get("publish_attempts"))
     last_err = None
+    # the changes are counted against the version this one is published on top of: the
+    # one the build started from, or, after a lost race, the newer one that won it
+    base, base_version = previous, (previous.version if previous is not None else None)
     for _ in range(attempts):
         current = store.current()
+        if current != base_version:
+            base, base_version = _read_base(store, current), current
         version = 1 if current is None else current + 1
         record = {"created": _created(), "tool": f"sketchmerge {__version__}",
-                  "previous_version": current, "changes": _changes(previous, units)}
+                  "previous_version": current, "changes": _changes(base, units)}
         data = encode_table(feats, version=version, content_extra=content, record=record)
         try:
             store.publish(version, data, plan.all_keys())

@@ -56,6 +56,17 @@ not depend on which fsspec call (``find``, ``ls``, ``info``, ``glob``)
 listed the object, so a worker re-checks the fingerprint with ``info``
 before reading (``read_unit(..., verify=True)``).
 
+Plan reuse
+----------
+Planning reads every file's metadata on the driver.  A refresh need not:
+:meth:`Dataset.plan_record` (stored in the cut table's content) keeps, per
+file, a key of its listing entry (relative path, format, size, version
+token) and a check over that entry, its schema and its units.  Given the
+previous table's content, :func:`open_dataset` rebuilds the units of every
+file whose key and check match from the stored lineage and reads the
+metadata of the others only; units, fingerprints and columns are those a
+planning from scratch gives.
+
 Errors
 ------
 Corrupt or truncated data is :class:`~sketchmerge.errors.InputError`; a
@@ -74,6 +85,7 @@ import errno as _errno
 import hashlib
 import io
 import json
+import logging
 import re
 import struct
 import threading
@@ -90,6 +102,8 @@ import pyarrow.ipc as pipc
 import pyarrow.parquet as pq
 
 from .errors import InputError, NoInputError, StorageError
+
+log = logging.getLogger("sketchmerge")
 
 __all__ = [
     "Dataset",
@@ -245,6 +259,13 @@ class Dataset:
     ignored : tuple of str
         Relative paths of files left out because their format is unknown or
         differs from ``fmt`` (hidden ``_``/``.`` paths are not listed).
+    byte_budget : int
+        The budget the units were grouped to.
+    metadata_reads : int
+        Files whose metadata (Parquet footer, IPC index, CSV header) this
+        planning read; the others were zero-byte or planned from ``previous``.
+    plan_reused : int
+        Files planned from the stored plan given as ``previous``.
     """
 
     source: str
@@ -255,10 +276,26 @@ class Dataset:
     files: tuple[str, ...] = field(repr=False)
     partition_columns: tuple[str, ...] = ()
     ignored: tuple[str, ...] = field(default=(), repr=False)
+    byte_budget: int = field(default=DEFAULT_BYTE_BUDGET, repr=False)
+    metadata_reads: int = field(default=0, repr=False, compare=False)
+    plan_reused: int = field(default=0, repr=False, compare=False)
+    # one _PlannedFile per file, in file order: what plan_record() stores
+    file_plans: tuple = field(default=(), repr=False, compare=False, hash=False)
 
     def nbytes(self) -> int:
         """Stored bytes covered by all units."""
         return int(sum(u.nbytes for u in self.units))
+
+    def plan_record(self) -> dict:
+        """What planning learned from the files' metadata, for a cut table's content.
+
+        Given back to :func:`open_dataset` as ``previous["plan"]`` (with the
+        ``units`` lineage and ``source`` of the same content), it lets a later
+        planning of the same source skip the metadata of every file whose
+        listing entry is unchanged.  Compact: 20 bytes per file plus each
+        distinct schema once (docs/FORMAT.md, "plan").
+        """
+        return _plan_record(self)
 
     def __repr__(self) -> str:
         return (f"Dataset(source={self.source!r}, protocol={self.protocol!r}, "
@@ -276,10 +313,19 @@ class _FileInfo:
 
 
 @dataclass(frozen=True)
+class _PlannedFile:
+    """One file as planned: what its entry in a stored plan is made from."""
+
+    info: _FileInfo
+    schema: tuple[tuple[str, str], ...]
+    digest: bytes = b""   # its 16-byte plan entry when already known (a reused file)
+
+
+@dataclass(frozen=True)
 class _FilePlan:
     """What planning learned from one file's metadata."""
 
-    schema: tuple[tuple[str, pa.DataType], ...]
+    schema: tuple[tuple[str, str], ...]   # (column name, type name) pairs
     fmt: str
     # one entry per row group / record batch: (rows, planning bytes, stored bytes)
     pieces: tuple[tuple[int, int, int], ...] = ()
@@ -512,9 +558,13 @@ def version_token(info: dict) -> str:
     return ""
 
 
+# one encoder for every digest: json.dumps with options builds a new encoder per call,
+# which was most of the cost of a plan rebuilt from a stored one
+_JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=True)
+
+
 def _fingerprint(address: str, size: int, token: str, parts: tuple[int, ...]) -> str:
-    doc = json.dumps([_FINGERPRINT_TAG, address, int(size), token, [int(p) for p in parts]],
-                     separators=(",", ":"), ensure_ascii=True)
+    doc = _JSON.encode([_FINGERPRINT_TAG, address, int(size), token, [int(p) for p in parts]])
     return hashlib.sha256(doc.encode("utf-8")).hexdigest()
 
 
@@ -908,8 +958,10 @@ def _check_duplicates(names: list[str], where: str) -> None:
         raise InputError(f"{where}: expected unique column names, got duplicates {dup}")
 
 
-def _schema_of(s: pa.Schema) -> tuple[tuple[str, pa.DataType], ...]:
-    return tuple((f.name, f.type) for f in s)
+def _schema_of(s: pa.Schema) -> tuple[tuple[str, str], ...]:
+    # type names, not Arrow types: unification works on names, and a stored plan
+    # (the cut table's content) can hold them
+    return tuple((f.name, _type_name(f.type)) for f in s)
 
 
 def _parquet_pieces(md: pq.FileMetaData, size: int) -> tuple[tuple[int, int, int], ...]:
@@ -1079,6 +1131,189 @@ def _units_of(fi: _FileInfo, plan: _FilePlan, budget: int) -> list[Unit]:
     return units
 
 
+# --------------------------------------------------------------------------- plan reuse
+
+# A published cut table stores, beside the unit lineage (address, rows, nbytes per
+# unit), one 16-byte entry per file: 8 bytes of sha256 over the file's listing
+# identity (relative path, format, size, version token), to find it, and 8 bytes of
+# sha256 over that identity together with everything planning derived from its
+# metadata (its schema and its units), to check it.  A file whose listing entry is
+# unchanged gets its units back from the lineage only when the check matches;
+# anything else about it is planned from its metadata again.  Bump _PLAN_TAG whenever
+# what planning derives from metadata changes.
+_PLAN_TAG = "sketchmerge.plan/1"
+_PLAN_ENTRY = 16
+
+
+class _StalePlan(Exception):
+    """A stored plan that cannot be used at all; the message says why."""
+
+
+@dataclass(frozen=True)
+class _StoredPlan:
+    by_key: dict        # 8-byte file key -> (8-byte check, schema index), None if ambiguous
+    schemas: list       # tuples of (name, type name) pairs
+    schema_digests: list
+    by_base: dict       # escaped relative path -> [(address, rows, nbytes)] in address order
+
+
+def _compact(obj) -> bytes:
+    return _JSON.encode(obj).encode("utf-8")
+
+
+def _file_key(fi: _FileInfo) -> bytes:
+    return hashlib.sha256(_compact([_PLAN_TAG, fi.rel, fi.fmt, fi.size, fi.token])).digest()[:8]
+
+
+def _file_check(fi: _FileInfo, schema_digest: str, units) -> bytes:
+    doc = [_PLAN_TAG, fi.rel, fi.fmt, fi.size, fi.token, schema_digest,
+           [[a, r, n] for a, r, n in units]]
+    return hashlib.sha256(_compact(doc)).digest()[:8]
+
+
+def _schema_digest(schema) -> str:
+    return hashlib.sha256(_compact([[n, t] for n, t in schema])).hexdigest()
+
+
+def _base(address: str) -> str:
+    # '#' inside a relative path is escaped, so the first one starts the part range
+    return address.split("#", 1)[0]
+
+
+def _plan_record(ds: Dataset) -> dict:
+    by_base: dict[str, list] = {}
+    for u in ds.units:
+        by_base.setdefault(_base(u.address), []).append((u.address, int(u.rows), int(u.nbytes)))
+    index: dict[tuple, int] = {}
+    schemas: list = []
+    digests: list[str] = []
+    entries, which = [], []
+    for pf in ds.file_plans:
+        i = index.get(pf.schema)
+        if i is None:
+            i = index[pf.schema] = len(schemas)
+            schemas.append([[n, t] for n, t in pf.schema])
+            digests.append(_schema_digest(pf.schema))
+        digest = pf.digest
+        if len(digest) != _PLAN_ENTRY:
+            fi = pf.info
+            digest = _file_key(fi) + _file_check(fi, digests[i], by_base.get(_escape(fi.rel), ()))
+        entries.append(digest)
+        which.append(i)
+    return {"tag": _PLAN_TAG, "byte_budget": int(ds.byte_budget), "schemas": schemas,
+            "files": b"".join(entries), "schema": np.asarray(which, dtype="<u4").tobytes()}
+
+
+def _is_int(v) -> bool:
+    return type(v) is int
+
+
+def _stored_plan(previous: Any, source: str, budget: int) -> _StoredPlan:
+    """The usable part of a previous table's content, or :class:`_StalePlan`."""
+    if not isinstance(previous, dict):
+        raise _StalePlan(f"expected the content of a cut table, got {type(previous).__name__}")
+    plan = previous.get("plan")
+    if plan is None:
+        raise _StalePlan("the previous version stores no plan (it predates them)")
+    if not isinstance(plan, dict) or plan.get("tag") != _PLAN_TAG:
+        raise _StalePlan(f"expected a plan tagged {_PLAN_TAG}, got another")
+    if previous.get("source") != source:
+        raise _StalePlan("the previous version was built from another source")
+    if plan.get("byte_budget") != budget or not _is_int(plan.get("byte_budget")):
+        raise _StalePlan(f"the previous version was planned to a byte budget of "
+                         f"{plan.get('byte_budget')!r}, this planning uses {budget}")
+    schemas_raw, files, which = plan.get("schemas"), plan.get("files"), plan.get("schema")
+    if not isinstance(schemas_raw, list) or not isinstance(files, bytes) \
+            or not isinstance(which, bytes):
+        raise _StalePlan("expected schemas (array), files and schema (binary)")
+    schemas = []
+    for sch in schemas_raw:
+        if not isinstance(sch, list) or not all(
+                isinstance(p, list) and len(p) == 2 and isinstance(p[0], str)
+                and isinstance(p[1], str) for p in sch):
+            raise _StalePlan("expected every schema as an array of [name, type] pairs")
+        schemas.append(tuple((n, t) for n, t in sch))
+    n = len(files) // _PLAN_ENTRY
+    if len(files) != n * _PLAN_ENTRY or len(which) != 4 * n:
+        raise _StalePlan(f"expected {_PLAN_ENTRY} bytes of files and 4 bytes of schema per "
+                         f"file, got {len(files)} and {len(which)}")
+    idx = np.frombuffer(which, dtype="<u4")
+    if n and int(idx.max()) >= len(schemas):
+        raise _StalePlan(f"schema index {int(idx.max())} out of range ({len(schemas)} schemas)")
+    lineage = previous.get("units")
+    if not isinstance(lineage, dict):
+        raise _StalePlan("expected the unit lineage beside the plan")
+    addr, rows, nbytes = (lineage.get(k) for k in ("address", "rows", "nbytes"))
+    if not (isinstance(addr, list) and isinstance(rows, list) and isinstance(nbytes, list)
+            and len(addr) == len(rows) == len(nbytes)):
+        raise _StalePlan("expected unit addresses, rows and nbytes of one length")
+    by_base: dict[str, list] = {}
+    for a, r, b in zip(addr, rows, nbytes):   # one loop over units, not rows
+        if not (isinstance(a, str) and _is_int(r) and _is_int(b) and r >= -1 and b >= 0):
+            raise _StalePlan("expected each unit as an address (str), rows and nbytes (int)")
+        by_base.setdefault(_base(a), []).append((a, r, b))
+    by_key: dict = {}
+    for i in range(n):
+        e = files[i * _PLAN_ENTRY:(i + 1) * _PLAN_ENTRY]
+        k = e[:8]
+        # two files with one key (never for a plan this code wrote): neither is trusted
+        by_key[k] = None if k in by_key else (e[8:], int(idx[i]))
+    return _StoredPlan(by_key=by_key, schemas=schemas,
+                       schema_digests=[_schema_digest(s) for s in schemas], by_base=by_base)
+
+
+def _stored_units(fi: _FileInfo, base: str, entries) -> list[Unit] | None:
+    """The units of one unchanged file from the lineage, exactly as planning them from
+    the file's metadata would give them; None when the lineage does not fit the file."""
+    if fi.fmt == "csv":
+        if len(entries) != 1 or entries[0][0] != base or entries[0][1] != -1 \
+                or entries[0][2] != fi.size:
+            return None
+        return [Unit(address=base, path=fi.path, fmt="csv", parts=(), rows=-1,
+                     nbytes=fi.size, fingerprint=_fingerprint(base, fi.size, fi.token, ()))]
+    kind = {"parquet": "rg", "arrow": "batch"}.get(fi.fmt)
+    if kind is None:
+        return None
+    prefix = f"{base}#{kind}="
+    runs = []
+    for address, rows, nbytes in entries:
+        first, dash, last = address[len(prefix):].partition("-")
+        if not (address.startswith(prefix) and dash and first.isascii() and first.isdigit()
+                and last.isascii() and last.isdigit() and rows >= 0):
+            return None
+        runs.append((address, int(first), int(last), rows, nbytes))
+    if not runs:
+        return []    # a Parquet file without row groups: a schema, no units
+    width = len(str(runs[-1][2]))
+    units, expect = [], 0
+    for address, a, b, rows, nbytes in runs:
+        if a != expect or b < a or address != f"{prefix}{a:0{width}d}-{b:0{width}d}":
+            return None
+        parts = tuple(range(a, b + 1))
+        units.append(Unit(address=address, path=fi.path, fmt=fi.fmt, parts=parts, rows=rows,
+                          nbytes=nbytes,
+                          fingerprint=_fingerprint(address, fi.size, fi.token, parts)))
+        expect = b + 1
+    return units
+
+
+def _reuse(stored: _StoredPlan, fi: _FileInfo):
+    """(schema, units, plan entry) of a file from the stored plan, or None."""
+    key = _file_key(fi)
+    hit = stored.by_key.get(key)
+    if hit is None:
+        return None
+    check, i = hit
+    base = _escape(fi.rel)
+    entries = stored.by_base.get(base, ())
+    if _file_check(fi, stored.schema_digests[i], entries) != check:
+        return None
+    units = _stored_units(fi, base, entries)
+    if units is None:
+        return None
+    return stored.schemas[i], units, key + check
+
+
 # --------------------------------------------------------------------------- open_dataset
 
 def _has_userinfo(url: str) -> bool:
@@ -1118,8 +1353,13 @@ def _resolve(source: str, storage_options: dict | None):
 
 
 def open_dataset(source: str, *, fmt: str | None = None, storage_options: dict | None = None,
-                 byte_budget: int = DEFAULT_BYTE_BUDGET) -> Dataset:
+                 byte_budget: int = DEFAULT_BYTE_BUDGET, previous: dict | None = None) -> Dataset:
     """Discover a dataset and plan its work units.
+
+    Planning reads every data file's metadata, unless ``previous`` holds a
+    stored plan of the same source and byte budget: then only new or changed
+    files (by path, size and version token) have theirs read, and the others'
+    units come from the stored plan.  The result is the same either way.
 
     Parameters
     ----------
@@ -1132,6 +1372,14 @@ def open_dataset(source: str, *, fmt: str | None = None, storage_options: dict |
     byte_budget : int
         Upper bound on the uncompressed bytes of consecutive Parquet row groups
         (stored bytes of IPC record batches) grouped into one unit.
+    previous : dict or callable, optional
+        The content of a cut table built from this source
+        (:attr:`~sketchmerge.cuts.CutTable.content`): its ``plan``
+        (:meth:`Dataset.plan_record`), ``units`` and ``source``; or a function
+        of no arguments returning it (or None), called once the source is
+        listed.  A stored plan that is missing, of another source or budget,
+        or inconsistent is not used (for one file or at all): those files are
+        planned from their metadata.
 
     Returns
     -------
@@ -1191,31 +1439,60 @@ def open_dataset(source: str, *, fmt: str | None = None, storage_options: dict |
         raise NoInputError(f"{shown}: expected Parquet, CSV or Arrow IPC data files, "
                            f"got none{hint}")
 
+    budget = int(byte_budget)
+    stored = None
+    if callable(previous):
+        previous = previous()
+    if previous is not None:
+        try:
+            stored = _stored_plan(previous, redact(shown), budget)
+        except _StalePlan as e:
+            log.info("%s: planning every file from its metadata: %s", shown, e)
+    reused = {}
+    if stored is not None:
+        for i, fi in enumerate(infos):
+            got = _reuse(stored, fi) if fi.size > 0 else None
+            if got is not None:
+                reused[i] = got
+    todo = [fi for i, fi in enumerate(infos) if i not in reused]
+
     def plan(fi):
         return _plan_file(fs, protocol, fi, secrets)
 
-    if len(infos) > 1:
-        with ThreadPoolExecutor(max_workers=min(_PLAN_THREADS, len(infos))) as pool:
-            plans = list(pool.map(plan, infos))   # re-raises the first failure in file order
+    if len(todo) > 1:
+        with ThreadPoolExecutor(max_workers=min(_PLAN_THREADS, len(todo))) as pool:
+            plans = iter(list(pool.map(plan, todo)))   # re-raises the first failure in file order
     else:
-        plans = [plan(infos[0])]
+        plans = iter([plan(fi) for fi in todo])
 
     columns: dict[str, str] = {}
     seen: dict[str, tuple[str, str]] = {}
     partition: list[str] = []
     units: list[Unit] = []
-    for fi, pl in zip(infos, plans):
+    planned: list[_PlannedFile] = []
+    for i, fi in enumerate(infos):
+        if i in reused:
+            schema, file_units, entry = reused[i]
+        else:
+            pl = next(plans)
+            schema, file_units, entry = pl.schema, _units_of(fi, pl, budget), b""
         where = redact(_display(protocol, fi.path), secrets)
-        for name, t in pl.schema:
-            _unify(columns, seen, name, _type_name(t), where)
+        for name, t in schema:
+            _unify(columns, seen, name, t, where)
         for k in _partition_keys(fi.rel):
             if k not in partition:
                 partition.append(k)
-        units.extend(_units_of(fi, pl, int(byte_budget)))
+        units.extend(file_units)
+        planned.append(_PlannedFile(info=fi, schema=schema, digest=entry))
     units.sort(key=lambda u: u.address)
+    if previous is not None:
+        log.debug("%s: %d of %d files planned from the previous version's plan", shown,
+                  len(reused), len(infos))
     return Dataset(source=shown, protocol=protocol, root=redact(root, secrets), units=tuple(units),
                    columns=columns, files=tuple(fi.path for fi in infos),
-                   partition_columns=tuple(partition), ignored=tuple(ignored))
+                   partition_columns=tuple(partition), ignored=tuple(ignored),
+                   byte_budget=budget, metadata_reads=sum(1 for fi in todo if fi.size > 0),
+                   plan_reused=len(reused), file_plans=tuple(planned))
 
 
 # --------------------------------------------------------------------------- feature selection
