@@ -361,3 +361,37 @@ def test_cli_json_and_exit_codes(tmp_path):
     r = subprocess.run([sys.executable, "-m", "sketchmerge.cli", "build", "--bogus"],
                        capture_output=True, text=True)
     assert r.returncode == 2
+
+
+def test_embedded_default_is_dasks_threaded_scheduler(tmp_path, client):
+    # without a client or scheduler the build runs on dask's in-process threaded scheduler:
+    # distributed is never imported, and the table equals a distributed cluster's byte for byte
+    frames = [make_frame(8000, s) for s in range(3)]
+    write_hive(str(tmp_path / "d"), frames, rows_per_group=2000)
+    code = ("import sys, json, logging, sketchmerge; logging.basicConfig(level=logging.INFO); "
+            f"r = sketchmerge.build({str(tmp_path / 'd')!r}, {str(tmp_path / 'a')!r}, bins=32, "
+            "weight_column='w', workers=2, byte_budget=60_000); "
+            "print(json.dumps([r['partitions_sketched'], 'distributed' in sys.modules]))")
+    env = {k: v for k, v in os.environ.items() if k != "DASK_SCHEDULER_ADDRESS"}
+    p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, timeout=120)
+    assert p.returncode == 0, p.stderr
+    sketched, imported = json.loads(p.stdout.strip().splitlines()[-1])
+    assert sketched > 4 and imported is False
+    assert f"{sketched}/{sketched} units sketched" in p.stderr  # progress lines reach the log
+    sketchmerge.build(str(tmp_path / "d"), str(tmp_path / "b"), bins=32, weight_column="w",
+                      byte_budget=60_000, client=client)
+    a, b = sketchmerge.load(str(tmp_path / "a")), sketchmerge.load(str(tmp_path / "b"))
+    assert a.content_sha256 == b.content_sha256
+    for n in a.features:
+        check_edges(a, n, concat(frames, n), concat(frames, "w"))
+
+
+def test_embedded_default_reports_bad_input_from_a_task(tmp_path):
+    # an error raised inside a threaded task reaches the caller as itself, naming the column
+    frames = [make_frame(4000, 0)]
+    frames[0]["w"] = frames[0]["w"].copy()
+    frames[0]["w"][123] = -1.0
+    write_hive(str(tmp_path / "d"), frames)
+    with pytest.raises(InputError, match="weight"):
+        sketchmerge.build(str(tmp_path / "d"), str(tmp_path / "t"), weight_column="w")
+    assert not (tmp_path / "t" / "CURRENT").exists()
