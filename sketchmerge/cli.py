@@ -113,7 +113,7 @@ def make_parser() -> argparse.ArgumentParser:
     g = b.add_mutually_exclusive_group()
     g.add_argument("--scheduler", metavar="ADDRESS", help="an existing Dask scheduler")
     g.add_argument("--scheduler-file", metavar="FILE", help="a Dask scheduler file")
-    b.add_argument("--workers", type=int, help="threads of the embedded local cluster")
+    b.add_argument("--workers", type=int, help="threads of the embedded local scheduler (default: all cores)")
     b.add_argument("--fan-in", type=int, help="children per merge node (default 8)")
     b.add_argument("--full", action="store_true", help="ignore cached summaries")
     b.add_argument("--keep", type=int, help="versions to keep (default 10; the current one always)")

@@ -70,7 +70,7 @@ def run_demo(folder: str, rows: int = 400_000, workers: int | None = None, json_
     if not os.path.isdir(data):
         say(f"generating {rows:,} rows of vertical-farm tray readings under {data} ...")
         generate(data, rows=rows)
-    say(f"building the cut table {table} on an embedded local cluster ...")
+    say(f"building the cut table {table} on Dask's local threaded scheduler ...")
     rep = build(data, table, weight_column="tray_area_m2", label_column="needs_water",
                 workers=workers, json_mode=json_mode)
     say(format_build(rep))
