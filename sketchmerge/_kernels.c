@@ -522,6 +522,116 @@ done:
     return res;
 }
 
+/* merge_bounds(x, rmin, rmax, w, offsets, totals, z, lo, hi, wz) -> count
+
+   The union z of the parts' values (part p is rows offsets[p]:offsets[p+1] of
+   the concatenated x, rmin, rmax, w, each part strictly increasing; totals[p]
+   its total weight) and, at each point, the sums over the parts (in part
+   order, starting from 0.0) of their extended rank bounds: at an entry its
+   own (rmin, rmax, w); between entries x_{g-1} < z < x_g, (rmin_{g-1} +
+   w_{g-1}, rmax_g - w_g, 0); below a part's minimum (0, 0, 0) and above its
+   maximum (total, total, 0).  summary._merged_bounds computes the same sums
+   with numpy, in the same order. */
+static PyObject *
+k_merge_bounds(PyObject *self, PyObject *args)
+{
+    PyObject *o[10];
+    if (!PyArg_ParseTuple(args, "OOOOOOOOOO", &o[0], &o[1], &o[2], &o[3], &o[4], &o[5], &o[6], &o[7],
+                          &o[8], &o[9]))
+        return NULL;
+    static const char *names[10] = {"x", "rmin", "rmax", "w", "offsets", "totals", "z", "lo", "hi", "wz"};
+    Py_buffer b[10];
+    int got = 0;
+    PyObject *res = NULL;
+    for (; got < 10; got++) {
+        if (get_buf(o[got], &b[got], 8, got >= 6, names[got]) < 0)
+            goto done;
+    }
+    {
+        Py_ssize_t n = b[0].len / 8, k = b[5].len / 8;
+        const int64_t *off = (const int64_t *)b[4].buf;
+        int bad = b[4].len / 8 != k + 1 || k < 1 || b[1].len != b[0].len || b[2].len != b[0].len ||
+                  b[3].len != b[0].len;
+        for (int i = 6; i < 10 && !bad; i++)
+            bad = b[i].len < b[0].len;
+        if (!bad) {
+            bad = off[0] != 0 || off[k] != n;
+            for (Py_ssize_t p = 0; p < k && !bad; p++)
+                bad = off[p + 1] < off[p];
+        }
+        if (bad) {
+            PyErr_SetString(PyExc_ValueError, "merge_bounds: array lengths or offsets do not agree");
+            goto done;
+        }
+        const double *x = (const double *)b[0].buf, *rmin = (const double *)b[1].buf;
+        const double *rmax = (const double *)b[2].buf, *w = (const double *)b[3].buf;
+        const double *tot = (const double *)b[5].buf;
+        double *z = (double *)b[6].buf, *lo = (double *)b[7].buf, *hi = (double *)b[8].buf;
+        double *wz = (double *)b[9].buf;
+        Py_ssize_t count = 0;
+        int nomem = 0;
+        Py_BEGIN_ALLOW_THREADS
+        Py_ssize_t *g = (Py_ssize_t *)PyMem_RawMalloc((size_t)k * sizeof(Py_ssize_t));
+        if (g == NULL) {
+            nomem = 1;
+        } else {
+            for (Py_ssize_t p = 0; p < k; p++)
+                g[p] = off[p];
+            for (;;) {
+                int any = 0;
+                double v = 0.0;
+                for (Py_ssize_t p = 0; p < k; p++) {
+                    if (g[p] < off[p + 1] && (!any || x[g[p]] < v)) {
+                        v = x[g[p]];
+                        any = 1;
+                    }
+                }
+                if (!any)
+                    break;
+                double sl = 0.0, sh = 0.0, sw = 0.0;
+                for (Py_ssize_t p = 0; p < k; p++) {
+                    Py_ssize_t j = g[p], a = off[p], e = off[p + 1];
+                    double fl, fh, fw = 0.0;
+                    if (j < e && x[j] == v) {
+                        fl = rmin[j];
+                        fh = rmax[j];
+                        fw = w[j];
+                        g[p] = j + 1;
+                    } else if (j == a) {
+                        fl = 0.0;
+                        fh = 0.0;
+                    } else if (j == e) {
+                        fl = tot[p];
+                        fh = tot[p];
+                    } else {
+                        fl = rmin[j - 1] + w[j - 1];
+                        fh = rmax[j] - w[j];
+                    }
+                    sl += fl;
+                    sh += fh;
+                    sw += fw;
+                }
+                z[count] = v;
+                lo[count] = sl;
+                hi[count] = sh;
+                wz[count] = sw;
+                count++;
+            }
+            PyMem_RawFree(g);
+        }
+        Py_END_ALLOW_THREADS
+        if (nomem) {
+            PyErr_NoMemory();
+            goto done;
+        }
+        res = PyLong_FromSsize_t(count);
+    }
+done:
+    for (int i = got - 1; i >= 0; i--)
+        PyBuffer_Release(&b[i]);
+    return res;
+}
+
 /* weights_ok(w) -> index of the first weight that is NaN, infinite or negative, or -1. */
 static PyObject *
 k_weights_ok(PyObject *self, PyObject *args)
@@ -554,6 +664,8 @@ static PyMethodDef methods[] = {
     {"select", k_select, METH_VARARGS, "select(cells, flags, rows) -> count"},
     {"refine", k_refine, METH_VARARGS,
      "refine(x, w, cells, pidx, cntpar, keys, weights, parents) -> groups"},
+    {"merge_bounds", k_merge_bounds, METH_VARARGS,
+     "merge_bounds(x, rmin, rmax, w, offsets, totals, z, lo, hi, wz) -> count"},
     {"compact", k_compact, METH_VARARGS, "compact(x, w, xout, wout, wmiss) -> kept"},
     {"weights_ok", k_weights_ok, METH_VARARGS, "weights_ok(w) -> first bad index or -1"},
     {NULL, NULL, 0, NULL},

@@ -927,49 +927,33 @@ def _extended(x, rmin, rmax, w, total, z):
 def _merged_bounds(parts):
     """Union of the parts' points with the sums of their extended bounds there.
 
-    ``sum_p r-_p(z)`` is computed in one pass over all entries instead of one
-    search per part: each part's extended lower bound is a step function that
-    changes only just after its entries, so the sum of all of them at ``z`` is
-    the sum of the steps of the entries below ``z`` (a cumulative sum over the
-    entries in value order), corrected at ``z`` itself by the parts that have
-    an entry there.  The upper bound likewise.  The cumulative sums run in
-    extended precision where the platform has it, so the result equals the
-    direct sum of the parts' bounds to within a few ulps.
+    At each point ``z`` of the union, ``sum_p r-_p(z)``, ``sum_p r+_p(z)`` and
+    ``sum_p w_p(z)`` with the extension of :func:`_extended`, added part by
+    part in order from 0.0.  Each part's bound at ``z`` is exact (an entry's
+    own field, or one addition of two of them), so the sums are within a few
+    ulps of the true sums.  The compiled kernel walks the parts once (a k-way
+    merge); the numpy route searches each part and adds in the same order, so
+    both give the same bits.
     """
-    x = np.concatenate([p._x for p in parts])
-    lo = np.concatenate([p._rmin for p in parts])
-    hi = np.concatenate([p._rmax for p in parts])
-    w = np.concatenate([p._w for p in parts])
-    sizes = np.array([p._x.shape[0] for p in parts])
-    last = np.cumsum(sizes) - 1
-    first = last - sizes + 1
-    tot = np.repeat(np.array([p._total for p in parts]), sizes)
-    # levels of the gap after / before each entry, within its own part
-    a_after = lo + w
-    a_after[last] = tot[last]
-    a_before = np.empty_like(a_after)
-    a_before[1:] = a_after[:-1]
-    a_before[first] = 0.0
-    b_before = hi - w
-    b_before[first] = 0.0
-    b_after = np.empty_like(b_before)
-    b_after[:-1] = b_before[1:]
-    b_after[last] = tot[last]
-    o = np.argsort(x, kind="stable")
-    xs = x[o]
-    starts = _run_starts(xs)
-    if starts is None:
-        starts = np.arange(xs.shape[0])
-    acc = np.longdouble
-
-    def summed(step, at):
-        before = np.zeros(starts.shape[0], acc)
-        c = np.cumsum(step[o], dtype=acc)
-        before[1:] = c[starts[1:] - 1]
-        return (before + np.add.reduceat(at[o], starts).astype(acc)).astype(_F8)
-
-    return (xs[starts], summed(a_after - a_before, lo - a_before),
-            summed(b_after - b_before, hi - b_before), np.add.reduceat(w[o], starts))
+    if _K is not None:
+        x = np.concatenate([p._x for p in parts])
+        n = x.shape[0]
+        off = np.zeros(len(parts) + 1, np.int64)
+        np.cumsum([p._x.shape[0] for p in parts], out=off[1:])
+        out = [np.empty(n, _F8) for _ in range(4)]
+        cnt = _K.merge_bounds(x, np.concatenate([p._rmin for p in parts]),
+                              np.concatenate([p._rmax for p in parts]),
+                              np.concatenate([p._w for p in parts]), off,
+                              np.array([p._total for p in parts], _F8), *out)
+        return tuple(a[:cnt].copy() if cnt < n else a for a in out)
+    z = np.unique(np.concatenate([p._x for p in parts]))
+    lo, hi, wz = np.zeros(z.shape[0], _F8), np.zeros(z.shape[0], _F8), np.zeros(z.shape[0], _F8)
+    for p in parts:
+        a, b, c = _extended(p._x, p._rmin, p._rmax, p._w, p._total, z)
+        lo += a
+        hi += b
+        wz += c
+    return z, lo, hi, wz
 
 
 class Summary:

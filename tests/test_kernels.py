@@ -165,3 +165,27 @@ def test_few_distinct_values_in_shared_cells_stay_exact(without_kernels):
     assert _same(s, without_kernels(x, None, u.size))
     p = Summary.from_values(x, capacity=u.size // 2)
     assert _same(p, Summary.from_values(x).prune(u.size // 2))
+
+
+def test_merge_kernel_gives_the_numpy_merge_bit_for_bit(monkeypatch):
+    # the k-way merge kernel adds the parts' extended bounds in part order, as the numpy
+    # route does; both are checked against the parts' own rank_bounds (the definition)
+    r = np.random.default_rng(12)
+    for trial in range(12):
+        parts = []
+        for i in range(int(r.integers(1, 9))):
+            n = int(r.integers(1, 20_000))
+            x = np.round(r.normal(size=n), int(r.integers(1, 5)))
+            w = r.gamma(2, 1, n) if trial % 2 else None
+            parts.append(Summary.from_values(x, w, capacity=int(r.integers(20, 2500))))
+        a = parts[0].merge(*parts[1:])
+        with monkeypatch.context() as m:
+            m.setattr(core, "_K", None)
+            b = parts[0].merge(*parts[1:])
+        assert _same(a, b), trial
+        if not a.is_exact:
+            lo = sum(p.rank_bounds(a.values)[0] * p.total_weight for p in parts)
+            hi = sum(p.rank_bounds(a.values)[1] * p.total_weight for p in parts)
+            np.testing.assert_allclose(a.rmin, lo, rtol=0, atol=1e-9 * a.total_weight)
+            np.testing.assert_allclose(a.rmax, hi, rtol=0, atol=1e-9 * a.total_weight)
+            assert a.epsilon <= a.bound
