@@ -28,6 +28,7 @@ import json
 import logging
 import os
 import sys
+import threading
 import time
 from dataclasses import dataclass, field
 
@@ -165,15 +166,84 @@ def _leaf(x: np.ndarray, w, capacity: int) -> Summary:
         return Summary.from_values(x, w).prune(capacity)
 
 
+_POOL = None
+_POOL_LOCK = threading.Lock()
+_ACTIVE = [0]  # sketch and merge tasks running in this process
+
+
+def _feature_pool():
+    """The process's pool for per-feature work (one thread per core, shared by every task).
+
+    A task hands its features to it only while fewer tasks than cores are running (the
+    new unit of a nightly refresh, the merges on its path): then one task uses every
+    core.  When every core has a task of its own, features run in the task's thread, since
+    more threads than cores only fight over the GIL.  The sketch core and the merge
+    release the GIL in their compiled kernels.
+    """
+    global _POOL
+    with _POOL_LOCK:
+        if _POOL is None:
+            from concurrent.futures import ThreadPoolExecutor
+
+            _POOL = ThreadPoolExecutor(max_workers=max(1, os.cpu_count() or 1),
+                                       thread_name_prefix="sketchmerge-feature")
+        return _POOL
+
+
+class _Running:
+    """Counts a task as running; ``spare`` tells whether a core has no task of its own."""
+
+    def __enter__(self):
+        with _POOL_LOCK:
+            _ACTIVE[0] += 1
+        return self
+
+    def __exit__(self, *exc):
+        with _POOL_LOCK:
+            _ACTIVE[0] -= 1
+
+    @staticmethod
+    def spare() -> bool:
+        return _ACTIVE[0] < (os.cpu_count() or 1)
+
+
+class _Now:
+    """A finished future: the inline stand-in for a pool submission."""
+
+    def __init__(self, fn, *args):
+        self._fn, self._args = fn, args
+
+    def result(self):
+        return self._fn(*self._args)
+
+    def cancel(self):
+        return True
+
+
+def _submit(parallel: bool, fn, *args):
+    return _feature_pool().submit(fn, *args) if parallel else _Now(fn, *args)
+
+
+def _sketch_one(name, a, w, capacity, dtype, where):
+    try:
+        s = _leaf(a, w, capacity)
+    except InputError as e:
+        raise InputError(f"{where}, column {name!r}: {e}") from None
+    return _with_dtype(s, dtype)
+
+
 def _sketch_columns(unit, spec: BuildSpec, where: str) -> tuple[dict, int]:
     """Summaries of one unit's features, reading the weight inputs first and then one
-    feature column at a time, each dropped once its summary is built: a worker holds the
-    weights, one feature column and the summaries, not every selected column at once."""
+    feature column at a time.  Each column is sketched on the feature pool while the next
+    is read, at most two at a time, and dropped once its summary is built: a task holds the
+    weights, up to three feature columns and the summaries, not every selected column."""
     from .sources import iter_unit
 
     side = [c for c in spec.columns_to_read() if c not in spec.features]
     cols = iter_unit(unit, side + list(spec.features), protocol=spec.protocol,
                      storage_options=spec.storage_options or None)
+    pending = []
+    sums = {}
     try:
         rows = next(cols)
         arrays = {}
@@ -182,16 +252,22 @@ def _sketch_columns(unit, spec: BuildSpec, where: str) -> tuple[dict, int]:
             arrays[name] = a
         w = _row_weights(arrays, spec, where, rows)
         del arrays
-        sums = {}
         unified = dict(spec.dtypes)
         for name, a, dtype in cols:
-            try:
-                s = _leaf(a, w, spec.leaf_capacity)
-            except InputError as e:
-                raise InputError(f"{where}, column {name!r}: {e}") from None
+            parallel = _Running.spare()  # asked per column: other tasks start and finish
+            pending.append((name, _submit(parallel, _sketch_one, name, a, w, spec.leaf_capacity,
+                                          unified.get(name) or dtype or "float64", where)))
             del a
-            sums[name] = _with_dtype(s, unified.get(name) or dtype or "float64")
+            while len(pending) >= (2 if parallel else 1):
+                n0, f0 = pending.pop(0)
+                sums[n0] = f0.result()
+        for n0, f0 in pending:
+            sums[n0] = f0.result()
+        pending = []
     finally:
+        for _, f in pending:  # an error on the way: let the sketches in flight finish first
+            if not f.cancel():
+                f.exception()
         cols.close()
     return sums, rows
 
@@ -199,12 +275,17 @@ def _sketch_columns(unit, spec: BuildSpec, where: str) -> tuple[dict, int]:
 def sketch_unit(unit, spec: BuildSpec, key: str) -> bytes:
     """Worker task: read one unit, sketch every feature, cache and return the blob."""
     where = f"unit {unit.address}"
-    sums, rows = with_retries(lambda: _sketch_columns(unit, spec, where),
-                              f"reading unit {unit.address}")
+    with _Running():
+        sums, rows = with_retries(lambda: _sketch_columns(unit, spec, where),
+                                  f"reading unit {unit.address}")
     blob = encode_summary_set(sums, {"rows": int(rows)})
     if spec.table_url:
         _store(spec.table_url, spec.table_options).put_blob(key, blob)
     return blob
+
+
+def _merge_one(parts: list, capacity: int) -> Summary:
+    return parts[0].merge(*parts[1:]).prune(capacity)
 
 
 def merge_blobs(blobs: list[bytes], capacity: int) -> bytes:
@@ -214,10 +295,9 @@ def merge_blobs(blobs: list[bytes], capacity: int) -> bytes:
     for s, _ in sets[1:]:
         if list(s) != names:
             raise FormatError(f"merge: expected the same features in every child, got {list(s)} and {names}")
-    out = {}
-    for n in names:
-        parts = [s[n] for s, _ in sets]
-        out[n] = parts[0].merge(*parts[1:]).prune(capacity)
+    parallel = _Running.spare()
+    futs = {n: _submit(parallel, _merge_one, [s[n] for s, _ in sets], capacity) for n in names}
+    out = {n: f.result() for n, f in futs.items()}
     rows = sum(int(m.get("rows", 0)) for _, m in sets)
     return encode_summary_set(out, {"rows": rows})
 
@@ -236,7 +316,8 @@ def merge_task(children: list, capacity: int, key: str, table_url: str, table_op
             blobs.append(b)
         else:
             blobs.append(c)
-    out = merge_blobs(blobs, capacity)
+    with _Running():
+        out = merge_blobs(blobs, capacity)
     if st is not None:
         st.put_blob(key, out)
     return out

@@ -395,3 +395,33 @@ def test_embedded_default_reports_bad_input_from_a_task(tmp_path):
     with pytest.raises(InputError, match="weight"):
         sketchmerge.build(str(tmp_path / "d"), str(tmp_path / "t"), weight_column="w")
     assert not (tmp_path / "t" / "CURRENT").exists()
+
+
+@pytest.mark.parametrize("spare", [True, False])
+def test_features_on_the_pool_or_inline_give_the_same_table(tmp_path, monkeypatch, spare):
+    # a task alone hands its features to the shared pool; with every core busy it runs them
+    # itself: the blobs and the table must not depend on which (reference: a build with the
+    # other choice, and exact numpy ranks)
+    import sketchmerge.job as job
+
+    frames = [make_frame(30_000, s) for s in range(2)]
+    write_hive(str(tmp_path / "d"), frames, rows_per_group=15_000)
+    monkeypatch.setattr(job._Running, "spare", staticmethod(lambda: spare))
+    sketchmerge.build(str(tmp_path / "d"), str(tmp_path / "a"), bins=64, weight_column="w", workers=2)
+    monkeypatch.setattr(job._Running, "spare", staticmethod(lambda: not spare))
+    sketchmerge.build(str(tmp_path / "d"), str(tmp_path / "b"), bins=64, weight_column="w", workers=2)
+    a, b = sketchmerge.load(str(tmp_path / "a")), sketchmerge.load(str(tmp_path / "b"))
+    assert a.content_sha256 == b.content_sha256
+    for n in a.features:
+        check_edges(a, n, concat(frames, n), concat(frames, "w"))
+
+
+def test_a_bad_column_on_the_pool_names_it(tmp_path, monkeypatch):
+    import sketchmerge.job as job
+
+    fr = make_frame(5000, 1)
+    fr["big"] = np.full(5000, 2**60, dtype=np.int64)  # beyond +-2**53: refused, naming the column
+    write_hive(str(tmp_path / "d"), [fr])
+    monkeypatch.setattr(job._Running, "spare", staticmethod(lambda: True))
+    with pytest.raises(InputError, match="'big'"):
+        sketchmerge.build(str(tmp_path / "d"), str(tmp_path / "t"), bins=16)

@@ -112,7 +112,10 @@ def goals(res: dict) -> list[tuple[str, str, str, str]]:
     r = res.get("refresh")
     if r:
         rows.append((f"refresh, 1 new unit on {r['units_before']} (in-process) / full build",
-                     f"{r['new_unit_ratio']:.3f} ({_s(r['new_unit_s'])} / {_s(r['full_s'])})",
+                     f"{r['new_unit_ratio']:.3f} ({_s(r['new_unit_s'])} / {_s(r['full_s'])}; best of "
+                     f"{len(r.get('new_unit_s_all', [0]))}, ratios "
+                     f"{min(r.get('new_unit_s_all', [r['new_unit_s']])) / r['full_s']:.3f}-"
+                     f"{max(r.get('new_unit_s_all', [r['new_unit_s']])) / r['full_s']:.3f})",
                      "<= 1/20", _ok(r["new_unit_ratio"] <= 0.05)))
         rows.append(("rerun, nothing changed (in-process) / full build",
                      f"{r['unchanged_ratio']:.3f} ({_s(r['unchanged_s'])})", "(reported)", ""))
@@ -132,8 +135,9 @@ def goals(res: dict) -> list[tuple[str, str, str, str]]:
         rows.append((f"embedded default, {st['rows']:,}-row build, whole process",
                      _s(st["build"]["wall_s"]), "<= 3 s", _ok(st["build"]["wall_s"] <= 3.0)))
         k = st["cluster_kinds"]
-        rows.append(("embedded cluster ready: " + " / ".join(k),
-                     " / ".join(_s(v["ready_s"]) for v in k.values()), "(chooses the default)", ""))
+        rows.append(("a distributed LocalCluster ready: " + " / ".join(k) + " (the embedded default "
+                     "starts none)", " / ".join(_s(v["ready_s"]) for v in k.values()),
+                     "(chooses the default)", ""))
     return rows
 
 
