@@ -169,6 +169,7 @@ def _leaf(x: np.ndarray, w, capacity: int) -> Summary:
 _POOL = None
 _POOL_LOCK = threading.Lock()
 _ACTIVE = [0]  # sketch and merge tasks running in this process
+_THREADS = [None]  # threads the embedded scheduler was given (None: one per core)
 
 
 def _feature_pool():
@@ -204,7 +205,7 @@ class _Running:
 
     @staticmethod
     def spare() -> bool:
-        return _ACTIVE[0] < (os.cpu_count() or 1)
+        return _ACTIVE[0] < (_THREADS[0] or os.cpu_count() or 1)
 
 
 class _Now:
@@ -761,5 +762,9 @@ def _run_local(dsk: dict, root_key: str, leaf_keys: set, workers, json_mode: boo
                 log.info("%d/%d units sketched", self.done, total)
                 self.last = now
 
-    with _Progress():
-        return dask.threaded.get(dsk, root_key, num_workers=n)
+    _THREADS[0] = n  # --workers bounds the feature pool's use too
+    try:
+        with _Progress():
+            return dask.threaded.get(dsk, root_key, num_workers=n)
+    finally:
+        _THREADS[0] = None
