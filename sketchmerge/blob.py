@@ -17,16 +17,29 @@ Payload layouts (docs/FORMAT.md, "Summary payload"):
              values, ``rmin`` and ``w``; ``rmax`` is derived.  Used only when
              the rank fields are stored losslessly.
 ``bounds``   any summary: values, ``rmin``, ``rmax`` and ``w``.
+``packed``   (format version 2) any non-exact summary, and exact summaries with
+             integer weights: values as order-preserving integer keys coded by
+             second-order prediction, rank fields on an integer grid, every
+             stream bit-packed in blocks of 32.
 
-Arrays are little-endian ``<f8``, or ``<f4`` when that is lossless.  The rank
-fields of a ``bounds`` payload may also be rounded to ``<f4`` in the safe
-direction (``rmin`` and ``w`` down, ``rmax`` up); then the stored a-priori
-bound grows by :data:`F4_ROUNDING_SLACK`, so a decoded summary's certified
-epsilon still stays within its bound.
+Arrays of the first three layouts are little-endian ``<f8``, or ``<f4`` when
+that is lossless.  The rank fields of a ``bounds`` payload may also be rounded
+to ``<f4`` in the safe direction (``rmin`` and ``w`` down, ``rmax`` up); then
+the stored a-priori bound grows by :data:`F4_ROUNDING_SLACK`, so a decoded
+summary's certified epsilon still stays within its bound.  A ``packed`` payload
+rounds its rank fields the same way, to multiples of a power of two at most
+``2**-23 * W``, with the same slack; its values are always lossless.
+
+Format version 2 adds ``packed`` and nothing else: the writer uses it where it
+applies, the decoder reads blobs of versions 1 and 2, and
+``encode_summary(s, version=1)`` still writes the bytes of version 1 (cut
+tables embed version-1 payloads, so that readers predating version 2 keep
+loading them).
 """
 
 from __future__ import annotations
 
+import math
 import re
 import zlib
 
@@ -34,13 +47,14 @@ import msgpack
 import numpy as np
 
 from .errors import FormatError
-from .summary import Summary
+from .summary import Summary, float_keys, key_values
 
 __all__ = [
     "F4_ROUNDING_SLACK",
     "FORMAT_VERSION",
     "KIND_SUMMARY",
     "KIND_SUMMARY_SET",
+    "READ_VERSIONS",
     "decode_envelope",
     "decode_summary",
     "decode_summary_set",
@@ -51,15 +65,19 @@ __all__ = [
     "summary_to_payload",
 ]
 
-FORMAT_VERSION = 1
+#: the format version blobs are written in
+FORMAT_VERSION = 2
+#: the format versions the blob decoder reads
+READ_VERSIONS = (1, 2)
 KIND_SUMMARY = "sketchmerge.summary"
 KIND_SUMMARY_SET = "sketchmerge.summary-set"
 
-#: Added to the a-priori bound when a ``bounds`` payload's rank fields are
-#: rounded to float32.  Each rounded field moves by less than one float32 ulp,
-#: i.e. by less than ``2**-23 * W`` (every rank field lies in ``[0, W]``), and
-#: the certified epsilon combines at most four fields, so it moves by less
-#: than ``4 * 2**-23 = 2**-21`` (about 4.8e-7) in normalised rank.
+#: Added to the a-priori bound when a payload's rank fields are rounded
+#: outward: to float32 in a ``bounds`` payload, to the grid of a ``packed``
+#: one.  Each rounded field moves by less than ``2**-23 * W`` (one float32
+#: ulp, or one grid step; every rank field lies in ``[0, W]``), and the
+#: certified epsilon combines at most four fields, so it moves by less than
+#: ``4 * 2**-23 = 2**-21`` (about 4.8e-7) in normalised rank.
 F4_ROUNDING_SLACK = 2.0**-21
 
 _F4_MAX = float(np.finfo(np.float32).max)
@@ -71,6 +89,17 @@ _DTYPE_NAME = re.compile(r"(float(16|32|64)|u?int(8|16|32|64)|bool)\Z")
 #: the decoder's tolerance (in normalised rank) for float rounding when it
 #: checks a summary's ranks against its total weight and its bound
 _TOLERANCE = 1e-9
+#: rmax may exceed W by less than one rounding step (2**-23 W); the check allows 2**-20 W
+_RMAX_OVER = 1.0 + 2.0**-20
+
+# the packed layout (docs/FORMAT.md, "Layout packed")
+_BLOCK = 32                  # values per block of a bit-packed stream (one width byte each)
+_CHUNK_BLOCKS = 1 << 9       # blocks unpacked at a time: bounds the temporaries
+_MAX_FIELD = 1 << 62         # largest quantized rank field
+_EXACT_INT = 2.0**53         # float64 holds every integer below this
+_F8_MIN_NORMAL = float(np.finfo(np.float64).tiny)
+_MASKS = np.array([(1 << b) - 1 for b in range(65)], dtype=np.uint64)
+_U1, _U63 = np.uint64(1), np.uint64(63)
 
 
 def _short(v, limit: int = 60) -> str:
@@ -102,14 +131,19 @@ def _unpack(data: bytes, what: str, *, max_array: int = 1 << 20, max_map: int = 
                           f"({type(e).__name__}: {_short(str(e), 120)})") from e
 
 
-def encode_envelope(kind: str, payload: bytes) -> bytes:
+def encode_envelope(kind: str, payload: bytes, version: int = FORMAT_VERSION) -> bytes:
     """Wrap a payload: kind, format version, payload bytes and their CRC-32 (zlib's)."""
-    return _pack({"kind": kind, "format": FORMAT_VERSION, "payload": payload,
+    return _pack({"kind": kind, "format": version, "payload": payload,
                   "crc32": zlib.crc32(payload) & 0xFFFFFFFF})
 
 
-def decode_envelope(blob, kind: str, what: str = "blob") -> bytes:
-    """Check an envelope's kind, version and checksum; return the payload bytes."""
+def _versions_text(versions) -> str:
+    v = [str(x) for x in versions]
+    return v[0] if len(v) == 1 else ", ".join(v[:-1]) + " or " + v[-1]
+
+
+def _open_envelope(blob, kind: str, what: str, versions) -> tuple[int, bytes]:
+    """Check an envelope's kind, version and checksum; return ``(version, payload)``."""
     if not isinstance(blob, (bytes, bytearray, memoryview)):
         raise FormatError(f"{what}: expected bytes, got {type(blob).__name__}")
     blob = bytes(blob)
@@ -124,9 +158,9 @@ def decode_envelope(blob, kind: str, what: str = "blob") -> bytes:
     version = env.get("format")
     if type(version) is not int:
         raise FormatError(f"{what}: expected an integer format version, got {_short(version)}")
-    if version != FORMAT_VERSION:
-        hint = "newer" if version > FORMAT_VERSION else "older"
-        raise FormatError(f"{what}: expected format version {FORMAT_VERSION}, got {version} "
+    if version not in versions:
+        hint = "newer" if version > max(versions) else "older"
+        raise FormatError(f"{what}: expected format version {_versions_text(versions)}, got {version} "
                           f"(written by a {hint} sketchmerge?)")
     payload = env.get("payload")
     crc = env.get("crc32")
@@ -141,7 +175,177 @@ def decode_envelope(blob, kind: str, what: str = "blob") -> bytes:
     actual = zlib.crc32(payload) & 0xFFFFFFFF
     if actual != crc:
         raise FormatError(f"{what}: checksum mismatch: expected crc32 {crc:#010x}, got {actual:#010x}")
-    return payload
+    return version, payload
+
+
+def decode_envelope(blob, kind: str, what: str = "blob", versions=READ_VERSIONS) -> bytes:
+    """Check an envelope's kind, version (one of ``versions``) and checksum; return the payload bytes."""
+    return _open_envelope(blob, kind, what, tuple(versions))[1]
+
+
+# --------------------------------------------------------------------------- packed streams
+def _zigzag(r: np.ndarray) -> np.ndarray:
+    """uint64 two's-complement residuals to uint64 codes: 0, -1, 1, -2 ... -> 0, 1, 2, 3 ..."""
+    return (r << _U1) ^ np.negative(r >> _U63)
+
+
+def _unzigzag(z: np.ndarray) -> np.ndarray:
+    return (z >> _U1) ^ np.negative(z & _U1)
+
+
+def _delta(a: np.ndarray) -> np.ndarray:
+    """First differences of a uint64 sequence modulo 2**64, with ``a[-1] := 0``."""
+    d = a.copy()
+    d[1:] -= a[:-1]
+    return d
+
+
+def _predict(a: np.ndarray) -> tuple[int, int, np.ndarray]:
+    """Second-order prediction of a uint64 sequence, modulo 2**64.
+
+    Returns ``(a[0], shift, codes)``: ``shift`` is the number of trailing zero
+    bits common to the differences ``d[i] = a[i] - a[i-1]``, and ``codes`` the
+    zigzag codes of ``e[i] - e[i-1]`` with ``e = d >> shift`` (``e[0] := 0``),
+    ``len(a) - 1`` of them.
+    """
+    d = a[1:] - a[:-1]
+    t = int(np.bitwise_or.reduce(d)) if d.size else 0
+    shift = (t & -t).bit_length() - 1 if t else 0
+    if shift:
+        d >>= np.uint64(shift)
+    r = d.copy()
+    r[1:] -= d[:-1]
+    return int(a[0]), shift, _zigzag(r)
+
+
+def _unpredict(start: int, shift: int, codes: np.ndarray) -> np.ndarray:
+    """Inverse of :func:`_predict` (uint64 cumulative sums, wrapping modulo 2**64)."""
+    out = np.empty(codes.size + 1, np.uint64)
+    out[0] = start
+    d = np.cumsum(_unzigzag(codes), dtype=np.uint64)
+    if shift:
+        d <<= np.uint64(shift)
+    np.cumsum(d, dtype=np.uint64, out=out[1:])
+    out[1:] += np.uint64(start)
+    return out
+
+
+def _bit_lengths(v: np.ndarray) -> np.ndarray:
+    """Bits of each uint64 (0 for 0), as int64."""
+    e = np.frexp(v.astype(np.float64))[1].astype(np.int64)   # exact below 2**53, may round up above
+    np.minimum(e, 64, out=e)
+    # a value rounded up to the next power of two has one bit less: then v >> (e - 1) == 0
+    e -= ((v >> np.maximum(e - 1, 0).astype(np.uint64)) == 0) & (e > 0)
+    return e
+
+
+def _blocks(counts: list[int], widths: list[np.ndarray]):
+    """Per block of the streams laid end to end (each stream's data starting on a byte): its
+    width, its number of values and its first bit; and each stream's data bytes."""
+    nbs = [ws.size for ws in widths]
+    w = np.concatenate(widths).astype(np.int64)
+    cnt = np.full(w.size, _BLOCK, np.int64)
+    lasts = np.cumsum(nbs) - 1
+    for m, nb, last in zip(counts, nbs, lasts):
+        if nb:
+            cnt[last] = m - _BLOCK * (nb - 1)   # the last block holds the rest
+    bits = w * cnt
+    end = np.cumsum(bits)
+    nbytes, shift, done, base = [], [], 0, 0
+    for nb, last in zip(nbs, lasts):
+        total = int(end[last]) - done if nb else 0
+        nbytes.append((total + 7) // 8)
+        shift.append(base - done)          # from the running bit count to the stream's own start
+        done += total
+        base += 8 * nbytes[-1]
+    first = end - bits + np.repeat(np.array(shift, np.int64), nbs)
+    return w, cnt, first, nbytes
+
+
+def _slot_bits(w, cnt, first):
+    """First bit of every slot of the blocks (32 per block); a block's unused slots sit at its end."""
+    slot = np.minimum(np.arange(_BLOCK, dtype=np.int64), cnt[:, None])
+    return (first[:, None] + slot * w[:, None]).reshape(-1)
+
+
+def _pack_streams(streams: list[np.ndarray]) -> list[bytes]:
+    """Bit-pack uint64 streams: each as one width byte per block of 32 values, then every
+    block's values in that many bits, least significant bit first (docs/FORMAT.md)."""
+    counts = [a.size for a in streams]
+    nbs = [-(-m // _BLOCK) for m in counts]
+    v = np.zeros(sum(nbs) * _BLOCK, np.uint64)
+    k = 0
+    for a, nb in zip(streams, nbs):
+        v[k:k + a.size] = a
+        k += nb * _BLOCK
+    w_all = _bit_lengths(np.bitwise_or.reduce(v.reshape(-1, _BLOCK), axis=1))
+    widths = np.split(w_all, np.cumsum(nbs)[:-1])
+    w, cnt, first, nbytes = _blocks(counts, widths)
+    # value i takes bits off[i] .. off[i] + width - 1: the high part of 64-bit little-endian
+    # word off[i] >> 6 and, past its end, the low part of the next.  Values share no bits,
+    # so adding the parts into their words assembles them
+    off = _slot_bits(w, cnt, first)
+    word = off >> 6
+    sh = (off & 63).astype(np.uint64)
+    words = np.zeros(int(word[-1]) + 2 if word.size else 1, "<u8")
+    np.add.at(words, word, v << sh)
+    np.add.at(words, word + 1, (v >> (_U63 - sh)) >> _U1)   # v >> (64 - sh), 0 if sh == 0
+    data = words.view(np.uint8)
+    out, pos = [], 0
+    for ws, nbyte in zip(widths, nbytes):
+        out.append(ws.astype(np.uint8).tobytes() + data[pos:pos + nbyte].tobytes())
+        pos += nbyte
+    return out
+
+
+def _pack_bits(v: np.ndarray) -> bytes:
+    """One bit-packed stream (see :func:`_pack_streams`)."""
+    return _pack_streams([np.asarray(v, dtype=np.uint64)])[0]
+
+
+def _check_bits(b: bytes, m: int, key: str, what: str) -> np.ndarray:
+    """Validate a bit-packed stream of ``m`` values without allocating for them; return its widths."""
+    nb = -(-m // _BLOCK)
+    if len(b) < nb:
+        raise FormatError(f"{what}: expected {nb} width bytes at the start of {key!r} ({m} values in "
+                          f"blocks of {_BLOCK}), got {len(b)} bytes")
+    widths = np.frombuffer(b, np.uint8, count=nb)
+    if nb and int(widths.max()) > 64:
+        raise FormatError(f"{what}: expected block widths 0 to 64 in {key!r}, got {int(widths.max())}")
+    bits = int(widths.sum(dtype=np.int64)) * _BLOCK
+    if nb:
+        bits -= int(widths[-1]) * (nb * _BLOCK - m)   # the last block holds the rest
+    need = nb + (bits + 7) // 8
+    if len(b) != need:
+        raise FormatError(f"{what}: expected {need} bytes for {key!r} ({nb} width bytes and {bits} bits "
+                          f"of {m} values), got {len(b)}")
+    if bits % 8 and b[-1] >> (bits % 8):
+        raise FormatError(f"{what}: expected zero padding bits at the end of {key!r}, "
+                          f"got last byte {b[-1]:#04x}")
+    return widths
+
+
+def _unpack_streams(bufs: list[bytes], counts: list[int], widths: list[np.ndarray]) -> list[np.ndarray]:
+    """The values of streams checked by :func:`_check_bits`."""
+    nbs = [ws.size for ws in widths]
+    data = b"".join(b[nb:] for b, nb in zip(bufs, nbs))
+    words = np.zeros(len(data) // 8 + 2, "<u8")   # a zero word past the end for the last spill
+    words.view(np.uint8)[:len(data)] = np.frombuffer(data, np.uint8)
+    w, cnt, first, _ = _blocks(counts, widths)
+    v = np.empty(w.size * _BLOCK, np.uint64)
+    for k in range(0, w.size, _CHUNK_BLOCKS):   # bounded temporaries for large inputs
+        blk = slice(k, k + _CHUNK_BLOCKS)
+        off = _slot_bits(w[blk], cnt[blk], first[blk])
+        word = off >> 6
+        sh = (off & 63).astype(np.uint64)
+        part = (words[word] >> sh) | ((words[word + 1] << (_U63 - sh)) << _U1)   # up to 71 bits
+        part.reshape(-1, _BLOCK)[...] &= _MASKS[w[blk]][:, None]
+        v[k * _BLOCK:k * _BLOCK + part.size] = part
+    out, k = [], 0
+    for m, nb in zip(counts, nbs):
+        out.append(v[k:k + m])
+        k += nb * _BLOCK
+    return out
 
 
 # --------------------------------------------------------------------------- summary payload
@@ -169,16 +373,69 @@ def _arr(a: np.ndarray, f4: bool):
     return "<f8", a.astype("<f8").tobytes()
 
 
-def summary_to_payload(s: Summary) -> dict:
+def _integral(a: np.ndarray) -> bool:
+    return bool(np.all(np.floor(a) == a))
+
+
+def _quantum(total: float) -> float:
+    """The rank grid step of a summary of total weight ``W`` (normal, > 0): 2**(floor(log2 W) - 23)."""
+    return math.ldexp(1.0, math.frexp(total)[1] - 24)
+
+
+def _packed_fields(s: Summary) -> dict | None:
+    """The ``packed`` layout's fields of ``s`` (with ``bound``), or None where it does not apply."""
+    x, total = s.values, s.total_weight
+    if x.size == 0 or bool(np.any((x == 0.0) & np.signbit(x))):
+        return None   # an empty summary has nothing to pack; -0.0 would come back as +0.0
+    if s.is_exact:
+        w = s.weights
+        if not (total < _EXACT_INT and _integral(w) and bool(np.all(w >= 0.0))):
+            return None   # float weights: xw keeps them exactly
+        q, bound = 1.0, 0.0
+        ranks = {"w_bits": w.astype(np.uint64)}
+    else:
+        lo, hi, w = s.rmin, s.rmax, s.weights
+        if total < _EXACT_INT and _integral(lo) and _integral(hi) and _integral(w):
+            q = 1.0    # counts and integer weights: lossless
+        elif math.isfinite(total) and total >= _F8_MIN_NORMAL:
+            q = _quantum(total)
+        else:
+            return None
+        with np.errstate(all="ignore"):
+            lo_q, hi_q, w_q = np.floor(lo / q), np.ceil(hi / q), np.floor(w / q)
+        for a in (lo_q, hi_q, w_q):
+            if not (bool(np.all(a >= 0.0)) and float(a.max()) <= _MAX_FIELD):   # NaN fails too
+                return None
+        if float(hi_q.max()) * q > total * _RMAX_OVER:
+            return None   # the decoder would reject it
+        lo_u, hi_u, w_u = lo_q.astype(np.uint64), hi_q.astype(np.uint64), w_q.astype(np.uint64)
+        if bool(np.any(hi_u < lo_u + w_u)):
+            return None
+        bound = s.bound
+        if not (np.array_equal(lo_q * q, lo) and np.array_equal(hi_q * q, hi) and np.array_equal(w_q * q, w)):
+            bound += F4_ROUNDING_SLACK
+        r0, rs, rc = _predict(lo_u)
+        ranks = {"rmin_start": r0, "rmin_shift": rs, "rmin_bits": rc,
+                 "w_bits": w_u, "u_bits": _zigzag(_delta(hi_u - lo_u - w_u))}
+    x0, xs, xc = _predict(float_keys(x))
+    fields = {"bound": bound, "quantum": q, "x_start": x0, "x_shift": xs, "x_bits": xc, **ranks}
+    keys = [k for k in fields if k.endswith("_bits")]
+    fields.update(zip(keys, _pack_streams([fields[k] for k in keys])))
+    return fields
+
+
+def summary_to_payload(s: Summary, version: int = FORMAT_VERSION) -> dict:
     """The payload map of one summary (msgpack-ready; see docs/FORMAT.md).
 
-    Picks the smallest layout that keeps the summary's guarantee: lossless
-    arrays where possible, float32 rank bounds rounded outward (with the
-    bound widened by :data:`F4_ROUNDING_SLACK`) only for the ``bounds`` layout.
+    Picks the smallest layout of format ``version`` that keeps the summary's
+    guarantee: ``packed`` (version 2) where it applies, else lossless arrays
+    where possible, float32 rank bounds rounded outward (with the bound
+    widened by :data:`F4_ROUNDING_SLACK`) only for the ``bounds`` layout.
     """
-    x = s.values
-    xt, xb = _arr(x, _lossless_f4(x))
-    out = {
+    if version not in READ_VERSIONS:
+        raise ValueError(f"summary payload: expected format version {_versions_text(READ_VERSIONS)}, "
+                         f"got {version!r}")
+    head = {
         "dtype": s.dtype,
         "count": s.count,
         "missing_count": s.missing_count,
@@ -186,9 +443,14 @@ def summary_to_payload(s: Summary) -> dict:
         "missing_weight": s.missing_weight,
         "exact": s.is_exact,
         "n": len(s),
-        "x_type": xt,
-        "x": xb,
     }
+    if version >= 2:
+        packed = _packed_fields(s)
+        if packed is not None:
+            return {**head, "layout": "packed", **packed}
+    x = s.values
+    xt, xb = _arr(x, _lossless_f4(x))
+    out = dict(head, x_type=xt, x=xb)
     if s.is_exact:
         # ranks are the canonical cumulative sum of w: store w only
         wt, wb = _arr(s.weights, _lossless_f4(s.weights))
@@ -216,11 +478,20 @@ def summary_to_payload(s: Summary) -> dict:
 
 
 _COMMON = {"dtype": str, "count": int, "missing_count": int, "total_weight": float,
-           "missing_weight": float, "exact": bool, "n": int, "x_type": str, "x": bytes,
-           "layout": str, "bound": float}
-_LAYOUT = {"xw": {"w_type": str, "w": bytes},
-           "ranked": {"rank_type": str, "rmin": bytes, "w": bytes},
-           "bounds": {"rank_type": str, "rmin": bytes, "rmax": bytes, "w": bytes}}
+           "missing_weight": float, "exact": bool, "n": int, "layout": str, "bound": float}
+_VALUES = {"x_type": str, "x": bytes}
+_LAYOUT = {"xw": {**_VALUES, "w_type": str, "w": bytes},
+           "ranked": {**_VALUES, "rank_type": str, "rmin": bytes, "w": bytes},
+           "bounds": {**_VALUES, "rank_type": str, "rmin": bytes, "rmax": bytes, "w": bytes}}
+_PACKED = {"quantum": float, "x_start": int, "x_shift": int, "x_bits": bytes, "w_bits": bytes}
+_PACKED_RANKS = {"rmin_start": int, "rmin_shift": int, "rmin_bits": bytes, "u_bits": bytes}
+_LAYOUTS = {1: ("xw", "ranked", "bounds"), 2: ("xw", "ranked", "bounds", "packed")}
+
+
+def _layout_fields(layout: str, exact: bool) -> dict:
+    if layout != "packed":
+        return _LAYOUT[layout]
+    return _PACKED if exact else {**_PACKED, **_PACKED_RANKS}
 
 
 def _field(p: dict, key: str, typ, what: str):
@@ -250,17 +521,59 @@ def _finite_nonneg(a: np.ndarray) -> bool:
     return bool(np.all(np.isfinite(a)) and np.all(a >= 0.0))
 
 
-def summary_from_payload(p, what: str = "summary") -> Summary:
-    """Validate a payload map and build the Summary it describes."""
+def _unpack_packed(p: dict, v: dict, what: str):
+    """Values and quantized rank fields of a ``packed`` payload (all checks before any allocation)."""
+    n, total, exact = v["n"], v["total_weight"], v["exact"]
+    if n < 1:
+        raise FormatError(f"{what}: expected n >= 1 for layout 'packed', got {n}")
+    q = float(p["quantum"])
+    if exact:
+        if q != 1.0 or v["bound"] != 0.0 or not total < _EXACT_INT:
+            raise FormatError(f"{what}: expected quantum 1, bound 0 and total_weight below 2**53 for an exact "
+                              f"'packed' payload, got quantum {q!r}, bound {v['bound']!r}, total_weight {total!r}")
+    elif not ((q == 1.0 and total < _EXACT_INT)
+              or (total >= _F8_MIN_NORMAL and q == _quantum(total))):
+        want = "1 (total_weight below 2**53)" if total < _F8_MIN_NORMAL else \
+            f"1 or {_quantum(total)!r} (2**(floor(log2 total_weight) - 23))"
+        raise FormatError(f"{what}: expected quantum {want}, got {q!r}")
+    starts = {"x_start": 1 << 64} if exact else {"x_start": 1 << 64, "rmin_start": _MAX_FIELD + 1}
+    for key, limit in starts.items():
+        if not 0 <= p[key] < limit:
+            raise FormatError(f"{what}: expected {key!r} in [0, {limit - 1}], got {_short(p[key])}")
+    for key in ("x_shift",) if exact else ("x_shift", "rmin_shift"):
+        if not 0 <= p[key] <= 63:
+            raise FormatError(f"{what}: expected {key!r} in [0, 63], got {_short(p[key])}")
+    counts = {"x_bits": n - 1, "w_bits": n} if exact else \
+        {"x_bits": n - 1, "rmin_bits": n - 1, "w_bits": n, "u_bits": n}
+    widths = [_check_bits(p[key], m, key, what) for key, m in counts.items()]
+    streams = dict(zip(counts, _unpack_streams([p[k] for k in counts], list(counts.values()), widths)))
+    x = key_values(_unpredict(p["x_start"], p["x_shift"], streams["x_bits"]))
+    if exact:
+        return x, q, None, streams["w_bits"], None
+    lo = _unpredict(p["rmin_start"], p["rmin_shift"], streams["rmin_bits"])
+    w, u = streams["w_bits"], np.cumsum(_unzigzag(streams["u_bits"]), dtype=np.uint64)
+    for key, a in (("rmin", lo), ("w", w), ("u", u)):
+        if bool(np.any(a > np.uint64(_MAX_FIELD))):
+            raise FormatError(f"{what}: expected quantized {key} values at most 2**62, got {int(a.max())}")
+    return x, q, lo, w, u
+
+
+def summary_from_payload(p, what: str = "summary", version: int = FORMAT_VERSION) -> Summary:
+    """Validate a payload map of format ``version`` and build the Summary it describes."""
     if not isinstance(p, dict):
         raise FormatError(f"{what}: expected a map, got {type(p).__name__}")
     v = {k: _field(p, k, t, what) for k, t in _COMMON.items()}
     layout = v["layout"]
-    if layout not in _LAYOUT:
-        raise FormatError(f"{what}: expected layout 'xw', 'ranked' or 'bounds', got {_short(layout)}")
-    for k, t in _LAYOUT[layout].items():
+    allowed = _LAYOUTS.get(version)
+    if allowed is None:
+        raise ValueError(f"{what}: expected format version {_versions_text(READ_VERSIONS)}, got {version!r}")
+    if layout not in allowed:
+        names = ", ".join(repr(a) for a in allowed[:-1]) + f" or {allowed[-1]!r}"
+        raise FormatError(f"{what}: expected layout {names} (format version {version}), got {_short(layout)}")
+    fields = _layout_fields(layout, v["exact"])
+    for k, t in fields.items():
         _field(p, k, t, what)
-    extra = set(p) - set(_COMMON) - set(_LAYOUT[layout])
+    extra = set(p) - set(_COMMON) - set(fields)
     if extra:
         raise FormatError(f"{what}: unexpected fields {_short(sorted(map(str, extra)))}")
     if not _DTYPE_NAME.match(v["dtype"]):
@@ -275,11 +588,23 @@ def summary_from_payload(p, what: str = "summary") -> Summary:
     if (n == 0) != (v["count"] == 0) or (n == 0 and v["total_weight"] != 0.0):
         raise FormatError(f"{what}: expected entries exactly when count > 0, got n={n}, "
                           f"count={v['count']}, total_weight={v['total_weight']!r}")
-    x = _array(p, "x", "x_type", n, what)
+    if layout == "packed":
+        x, q, lo_q, w_q, u_q = _unpack_packed(p, v, what)
+    else:
+        x = _array(p, "x", "x_type", n, what)
     if np.isnan(x).any() or (n > 1 and not bool(np.all(x[1:] > x[:-1]))):
         raise FormatError(f"{what}: expected strictly increasing entry values, got unsorted or NaN values")
     common = dict(count=v["count"], missing_count=v["missing_count"],
                   missing_weight=v["missing_weight"], dtype=v["dtype"])
+    if layout == "packed" and v["exact"]:
+        if bool(np.any(w_q >= np.uint64(2**53))):
+            raise FormatError(f"{what}: expected integer weights below 2**53 in an exact 'packed' payload, "
+                              f"got up to {int(w_q.max())}")
+        s = Summary._exact_from_entries(x, w_q.astype(np.float64), **common)
+        if s.total_weight != v["total_weight"]:
+            raise FormatError(f"{what}: expected total_weight {s.total_weight!r} from the entries, "
+                              f"got {v['total_weight']!r}")
+        return s
     if layout == "xw":
         if not v["exact"] or v["bound"] != 0.0:
             raise FormatError(f"{what}: expected exact=true and bound 0 for layout 'xw', "
@@ -294,22 +619,29 @@ def summary_from_payload(p, what: str = "summary") -> Summary:
         return s
     if v["exact"]:
         raise FormatError(f"{what}: expected exact=false for layout {layout!r}, got true")
-    lo = _array(p, "rmin", "rank_type", n, what)
-    w = _array(p, "w", "rank_type", n, what)
-    if layout == "ranked":
-        if p["rank_type"] != "<f4":
-            raise FormatError(f"{what}: expected rank_type '<f4' for layout 'ranked', got {_short(p['rank_type'])}")
-        hi = lo + w
+    if layout == "packed":
+        with np.errstate(over="ignore"):
+            lo = lo_q.astype(np.float64) * q
+            w = w_q.astype(np.float64) * q
+            hi = (lo_q + w_q + u_q).astype(np.float64) * q
     else:
-        hi = _array(p, "rmax", "rank_type", n, what)
+        lo = _array(p, "rmin", "rank_type", n, what)
+        w = _array(p, "w", "rank_type", n, what)
+        if layout == "ranked":
+            if p["rank_type"] != "<f4":
+                raise FormatError(f"{what}: expected rank_type '<f4' for layout 'ranked', "
+                                  f"got {_short(p['rank_type'])}")
+            hi = lo + w
+        else:
+            hi = _array(p, "rmax", "rank_type", n, what)
     total = v["total_weight"]
     if not (_finite_nonneg(lo) and _finite_nonneg(w) and _finite_nonneg(hi) and bool(np.all(lo <= hi))):
         raise FormatError(f"{what}: expected finite rank bounds with 0 <= rmin <= rmax and w >= 0")
-    # float32 rounding up may lift rmax above W by less than one float32 ulp (2**-23 W)
-    if n and float(hi.max()) > total * (1.0 + 2.0**-20) + _TOLERANCE:
+    # outward rounding may lift rmax above W by less than one step (2**-23 W)
+    if n and float(hi.max()) > total * _RMAX_OVER + _TOLERANCE:
         raise FormatError(f"{what}: expected rank bounds within the total weight {total!r}, "
                           f"got rmax up to {float(hi.max())!r}")
-    s = Summary(x, lo, hi, w, total_weight=total, bound=v["bound"], exact=False, **common)
+    s = Summary._own(x, lo, hi, w, total_weight=total, bound=v["bound"], exact=False, **common)
     if s.epsilon > v["bound"] + _TOLERANCE:
         raise FormatError(f"{what}: expected a certified epsilon within the stored bound {v['bound']!r}, "
                           f"got {s.epsilon!r}")
@@ -317,25 +649,26 @@ def summary_from_payload(p, what: str = "summary") -> Summary:
 
 
 # --------------------------------------------------------------------------- public codecs
-def encode_summary(s: Summary) -> bytes:
-    """One summary as a blob of kind ``sketchmerge.summary``."""
-    return encode_envelope(KIND_SUMMARY, _pack(summary_to_payload(s)))
+def encode_summary(s: Summary, version: int = FORMAT_VERSION) -> bytes:
+    """One summary as a blob of kind ``sketchmerge.summary`` (format ``version``: 2, or 1 for old readers)."""
+    return encode_envelope(KIND_SUMMARY, _pack(summary_to_payload(s, version)), version)
 
 
 def decode_summary(blob) -> Summary:
-    """Decode a ``sketchmerge.summary`` blob; any defect raises FormatError."""
-    payload = decode_envelope(blob, KIND_SUMMARY, "summary blob")
-    return summary_from_payload(_unpack(payload, "summary blob payload", max_map=64), "summary blob")
+    """Decode a ``sketchmerge.summary`` blob of any readable version; any defect raises FormatError."""
+    version, payload = _open_envelope(blob, KIND_SUMMARY, "summary blob", READ_VERSIONS)
+    return summary_from_payload(_unpack(payload, "summary blob payload", max_map=64), "summary blob", version)
 
 
 _META_TYPES = (str, int, float, bool, type(None))
 
 
-def encode_summary_set(summaries: dict, meta: dict | None = None) -> bytes:
+def encode_summary_set(summaries: dict, meta: dict | None = None, version: int = FORMAT_VERSION) -> bytes:
     """The summaries of several features (one work unit or one merge node) in one blob.
 
     ``summaries`` maps feature name to :class:`Summary`, in the order to keep;
-    ``meta`` is a flat map of str to str/int/float/bool/None.
+    ``meta`` is a flat map of str to str/int/float/bool/None; ``version`` the
+    format version to write (2, or 1 for old readers).
     """
     meta = dict(meta or {})
     for k, v in meta.items():
@@ -344,15 +677,15 @@ def encode_summary_set(summaries: dict, meta: dict | None = None) -> bytes:
     for k, s in summaries.items():
         if not isinstance(k, str) or not isinstance(s, Summary):
             raise TypeError(f"summary-set must map str to Summary, got {k!r}: {type(s).__name__}")
-    body = {"names": list(summaries), "summaries": [summary_to_payload(s) for s in summaries.values()],
+    body = {"names": list(summaries), "summaries": [summary_to_payload(s, version) for s in summaries.values()],
             "meta": meta}
-    return encode_envelope(KIND_SUMMARY_SET, _pack(body))
+    return encode_envelope(KIND_SUMMARY_SET, _pack(body), version)
 
 
 def decode_summary_set(blob) -> tuple[dict, dict]:
-    """Decode a ``sketchmerge.summary-set`` blob into ``(summaries, meta)``."""
+    """Decode a ``sketchmerge.summary-set`` blob (any readable version) into ``(summaries, meta)``."""
     what = "summary-set blob"
-    payload = decode_envelope(blob, KIND_SUMMARY_SET, what)
+    version, payload = _open_envelope(blob, KIND_SUMMARY_SET, what, READ_VERSIONS)
     body = _unpack(payload, what + " payload", max_map=1 << 12)
     if not isinstance(body, dict) or set(body) != {"names", "summaries", "meta"}:
         got = sorted(map(str, body)) if isinstance(body, dict) else type(body).__name__
@@ -365,5 +698,5 @@ def decode_summary_set(blob) -> tuple[dict, dict]:
     if not isinstance(meta, dict) or not all(isinstance(k, str) and isinstance(v, _META_TYPES)
                                              for k, v in meta.items()):
         raise FormatError(f"{what}: expected meta as a flat map of str to scalars")
-    out = {n: summary_from_payload(p, f"{what} feature {_short(n)}") for n, p in zip(names, sums)}
+    out = {n: summary_from_payload(p, f"{what} feature {_short(n)}", version) for n, p in zip(names, sums)}
     return out, meta

@@ -40,6 +40,10 @@ __all__ = ["CutTable", "FeatureCuts", "KIND_TABLE", "compute_edges", "decode_tab
            "encode_table", "load"]
 
 KIND_TABLE = "sketchmerge.cut-table"
+#: Format version of the table document.  Its features embed summary payloads of
+#: blob format version 1 (layouts xw, ranked and bounds, never packed), so that
+#: readers older than blob format 2 keep loading new tables.
+TABLE_FORMAT_VERSION = 1
 _MAX_BINS = 65535
 
 
@@ -158,7 +162,7 @@ def encode_table(features: list[FeatureCuts], *, version: int, content_extra: di
             "first_target": f.first_target.astype("<i4").tobytes(),
             "last_target": f.last_target.astype("<i4").tobytes(),
             "rank_error": f.rank_error, "target_rank_error": f.target_rank_error,
-            "summary": summary_to_payload(f.summary),
+            "summary": summary_to_payload(f.summary, version=TABLE_FORMAT_VERSION),
         })
     content = dict(content_extra)
     content["features"] = feats
@@ -168,7 +172,7 @@ def encode_table(features: list[FeatureCuts], *, version: int, content_extra: di
     payload = {"content": content_bytes,
                "content_sha256": hashlib.sha256(content_bytes).hexdigest(),
                "record": rec}
-    return encode_envelope(KIND_TABLE, _pack(payload))
+    return encode_envelope(KIND_TABLE, _pack(payload), version=TABLE_FORMAT_VERSION)
 
 
 _FEATURE_KEYS = {"name": str, "dtype": str, "mode": str, "bins": int, "edges": bytes,
@@ -203,7 +207,7 @@ def _feature_from(d, what) -> FeatureCuts:
         raise FormatError(f"{what}: expected mode quantile, distinct or empty, got {v['mode']!r}")
     if v["mode"] == "quantile" and first.size != edges.size:
         raise FormatError(f"{what}: expected one target range per edge, got {first.size} for {edges.size} edges")
-    s = summary_from_payload(v["summary"], what + " summary")
+    s = summary_from_payload(v["summary"], what + " summary", version=TABLE_FORMAT_VERSION)
     for a in (edges, first, last):
         a.setflags(write=False)
     return FeatureCuts(name=v["name"], dtype=v["dtype"], mode=v["mode"], edges=edges,
@@ -214,7 +218,7 @@ def _feature_from(d, what) -> FeatureCuts:
 
 def decode_table(blob, what: str = "cut table") -> "CutTable":
     """Decode and verify a cut table document; any defect raises FormatError."""
-    payload = decode_envelope(blob, KIND_TABLE, what)
+    payload = decode_envelope(blob, KIND_TABLE, what, versions=(TABLE_FORMAT_VERSION,))
     body = _unpack(payload, what, max_map=64)
     if not isinstance(body, dict) or set(body) != {"content", "content_sha256", "record"}:
         raise FormatError(f"{what}: expected keys content, content_sha256, record")

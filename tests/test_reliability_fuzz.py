@@ -344,7 +344,7 @@ def test_fuzz_many():
 
 def test_signalling_nan_in_a_float32_array_is_a_format_error_without_warnings():
     s = Summary.from_values(np.random.default_rng(3).lognormal(0, 1, 5000)).prune(32)
-    env = _unpack(encode_summary(s))
+    env = _unpack(encode_summary(s, version=1))   # format 1: float32 arrays (docs/FORMAT.md)
     body = _unpack(env["payload"])
     assert body["rank_type"] == "<f4"   # float32 rank fields (docs/FORMAT.md)
     # 0x7f800001: a signalling NaN in IEEE 754 binary32 (exponent all ones, quiet bit clear)
