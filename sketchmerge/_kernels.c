@@ -18,6 +18,10 @@
 #include <stdint.h>
 #include <string.h>
 
+#if defined(__BYTE_ORDER__) && __BYTE_ORDER__ == __ORDER_BIG_ENDIAN__
+#error "the kernels read little-endian words; the numpy paths serve big-endian hosts"
+#endif
+
 static int
 get_buf(PyObject *obj, Py_buffer *view, Py_ssize_t itemsize, int writable, const char *name)
 {
@@ -31,6 +35,8 @@ get_buf(PyObject *obj, Py_buffer *view, Py_ssize_t itemsize, int writable, const
     }
     return 0;
 }
+
+static int read_stream(const uint8_t *d, Py_ssize_t len, Py_ssize_t m, Py_ssize_t block, uint64_t *out);
 
 static inline uint64_t
 float_key(double v)
@@ -632,6 +638,316 @@ done:
     return res;
 }
 
+/* bitpack(v, block, out) -> bytes: one bit-packed stream of the blob format's
+   `packed` layout (docs/FORMAT.md): one width byte per block of `block` values
+   (the bit length of the block's largest value), then every block's values in
+   that many bits, least significant bit first, blocks back to back, zero
+   padding to a whole byte.  out must hold ceil(m / block) + 8 * m + 8 bytes. */
+static PyObject *
+k_bitpack(PyObject *self, PyObject *args)
+{
+    PyObject *vo, *oo;
+    Py_ssize_t block;
+    if (!PyArg_ParseTuple(args, "OnO", &vo, &block, &oo))
+        return NULL;
+    if (block < 1) {
+        PyErr_SetString(PyExc_ValueError, "bitpack: block must be >= 1");
+        return NULL;
+    }
+    Py_buffer vb, ob;
+    if (get_buf(vo, &vb, 8, 0, "v") < 0)
+        return NULL;
+    if (get_buf(oo, &ob, 1, 1, "out") < 0) {
+        PyBuffer_Release(&vb);
+        return NULL;
+    }
+    Py_ssize_t m = vb.len / 8, nb = (m + block - 1) / block;
+    if (ob.len < nb + 8 * m + 8) {
+        PyBuffer_Release(&ob);
+        PyBuffer_Release(&vb);
+        PyErr_SetString(PyExc_ValueError, "bitpack: out too short");
+        return NULL;
+    }
+    const uint64_t *v = (const uint64_t *)vb.buf;
+    uint8_t *out = (uint8_t *)ob.buf;
+    Py_ssize_t pos = nb;
+    Py_BEGIN_ALLOW_THREADS
+    uint64_t acc = 0;
+    int nacc = 0;
+    for (Py_ssize_t b = 0; b < nb; b++) {
+        Py_ssize_t s0 = b * block, s1 = s0 + block < m ? s0 + block : m;
+        uint64_t o = 0;
+        for (Py_ssize_t i = s0; i < s1; i++)
+            o |= v[i];
+        int wd = o ? 64 - __builtin_clzll(o) : 0;
+        out[b] = (uint8_t)wd;
+        if (!wd)
+            continue;
+        for (Py_ssize_t i = s0; i < s1; i++) {
+            uint64_t x = v[i];
+            acc |= x << nacc;  /* nacc < 64 here */
+            if (nacc + wd >= 64) {
+                for (int k = 0; k < 8; k++)
+                    out[pos++] = (uint8_t)(acc >> (8 * k));
+                int used = 64 - nacc;  /* bits of x already placed */
+                acc = used < 64 ? x >> used : 0;
+                nacc = wd - used;
+            } else {
+                nacc += wd;
+            }
+        }
+    }
+    for (int k = 0; k < (nacc + 7) / 8; k++)
+        out[pos++] = (uint8_t)(acc >> (8 * k));
+    Py_END_ALLOW_THREADS
+    PyBuffer_Release(&ob);
+    PyBuffer_Release(&vb);
+    return PyLong_FromSsize_t(pos);
+}
+
+/* bitunpack(data, m, block, out): the m values of a stream written by bitpack
+   (the caller has checked its widths and length, as summary payloads do before
+   decoding; a short stream raises ValueError rather than reading past it). */
+static PyObject *
+k_bitunpack(PyObject *self, PyObject *args)
+{
+    PyObject *bo, *oo;
+    Py_ssize_t m, block;
+    if (!PyArg_ParseTuple(args, "OnnO", &bo, &m, &block, &oo))
+        return NULL;
+    if (block < 1 || m < 0) {
+        PyErr_SetString(PyExc_ValueError, "bitunpack: expected block >= 1 and m >= 0");
+        return NULL;
+    }
+    Py_buffer bb, ob;
+    if (PyObject_GetBuffer(bo, &bb, PyBUF_C_CONTIGUOUS) < 0)
+        return NULL;
+    if (get_buf(oo, &ob, 8, 1, "out") < 0) {
+        PyBuffer_Release(&bb);
+        return NULL;
+    }
+    const uint8_t *d = (const uint8_t *)bb.buf;
+    Py_ssize_t len = bb.len, nb = (m + block - 1) / block;
+    uint64_t *out = (uint64_t *)ob.buf;
+    int bad = ob.len / 8 < m || len < nb;
+    if (!bad) {
+        int r;
+        Py_BEGIN_ALLOW_THREADS
+        r = read_stream(d, len, m, block, out);
+        Py_END_ALLOW_THREADS
+        bad = r != 0;
+    }
+    PyBuffer_Release(&ob);
+    PyBuffer_Release(&bb);
+    if (bad) {
+        PyErr_SetString(PyExc_ValueError, "bitunpack: stream too short for its widths, or a width above 64");
+        return NULL;
+    }
+    Py_RETURN_NONE;
+}
+
+/* The bit reader of bitunpack, on a stream already checked by the caller:
+   returns -1 when it is too short for its widths or a width exceeds 64. */
+static int
+read_stream(const uint8_t *d, Py_ssize_t len, Py_ssize_t m, Py_ssize_t block, uint64_t *out)
+{
+    Py_ssize_t nb = (m + block - 1) / block;
+    if (len < nb)
+        return -1;
+    long long bits = 0;
+    for (Py_ssize_t b = 0; b < nb; b++) {
+        Py_ssize_t s0 = b * block, s1 = s0 + block < m ? s0 + block : m;
+        if (d[b] > 64)
+            return -1;
+        bits += (long long)d[b] * (s1 - s0);
+    }
+    if (len - nb < (bits + 7) / 8)
+        return -1;
+    /* a zero-padded copy of the data, so that every value is two 8-byte loads */
+    Py_ssize_t dlen = len - nb;
+    uint8_t *p = (uint8_t *)PyMem_RawMalloc((size_t)dlen + 16);
+    if (p == NULL)
+        return -2;
+    memcpy(p, d + nb, (size_t)dlen);
+    memset(p + dlen, 0, 16);
+    unsigned long long pos = 0;  /* bit position */
+    for (Py_ssize_t b = 0; b < nb; b++) {
+        int wd = d[b];
+        Py_ssize_t s0 = b * block, s1 = s0 + block < m ? s0 + block : m;
+        if (wd == 0) {
+            for (Py_ssize_t i = s0; i < s1; i++)
+                out[i] = 0;
+            continue;
+        }
+        uint64_t mask = wd == 64 ? UINT64_MAX : ((UINT64_C(1) << wd) - 1);
+        for (Py_ssize_t i = s0; i < s1; i++) {
+            uint64_t lo, hi;
+            unsigned sh = (unsigned)(pos & 7);
+            memcpy(&lo, p + (pos >> 3), 8);
+            memcpy(&hi, p + (pos >> 3) + 8, 8);
+            uint64_t v = sh ? (lo >> sh) | (hi << (64 - sh)) : lo;  /* little-endian host */
+            out[i] = v & mask;
+            pos += (unsigned)wd;
+        }
+    }
+    PyMem_RawFree(p);
+    return 0;
+}
+
+static inline uint64_t
+unzigzag(uint64_t z)
+{
+    return (z >> 1) ^ (uint64_t)(-(int64_t)(z & 1));
+}
+
+/* second-order prediction, inverted (blob._unpredict): out[0] = start, out[i] = start +
+   sum_{j<=i} (sum_{l<=j} unzigzag(c[l])) << shift, all modulo 2**64 */
+static void
+unpredict(uint64_t start, int shift, const uint64_t *c, Py_ssize_t m, uint64_t *out)
+{
+    uint64_t d = 0, acc = 0;
+    out[0] = start;
+    for (Py_ssize_t i = 0; i < m; i++) {
+        d += unzigzag(c[i]);
+        acc += d << shift;
+        out[i + 1] = acc + start;
+    }
+}
+
+static inline double
+key_value(uint64_t k)
+{
+    int64_t i = (int64_t)(k ^ (UINT64_C(1) << 63));
+    int64_t s = i >> 63;
+    i = (i ^ s) - s;
+    i |= s & INT64_MIN;
+    double v;
+    memcpy(&v, &i, 8);
+    return v;
+}
+
+/* unpack_packed(xbits, rbits, wbits, ubits, n, block, xstart, xshift, rstart, rshift, q,
+                 x, lo, hi, w) -> code
+
+   The entries of a `packed` summary payload (docs/FORMAT.md), as blob._unpack_packed
+   and summary_from_payload compute them: values x from their keys, and, unless rbits
+   is None (an exact payload: w gets the integer weights), lo = rmin_q * q, w = w_q * q,
+   hi = (rmin_q + w_q + u_q) * q.  Codes: 0 fine; 1 a stream too short or a width above
+   64; 2, 3, 4 a quantized rmin, w or u above 2**62; 5 values NaN or not strictly
+   increasing; 6 a rank field not finite; 7 an exact weight not below 2**53. */
+static PyObject *
+k_unpack_packed(PyObject *self, PyObject *args)
+{
+    PyObject *bo[4], *oo[4];
+    Py_ssize_t n, block;
+    unsigned long long xstart, rstart;
+    int xshift, rshift;
+    double q;
+    if (!PyArg_ParseTuple(args, "OOOOnnKiKidOOOO", &bo[0], &bo[1], &bo[2], &bo[3], &n, &block,
+                          &xstart, &xshift, &rstart, &rshift, &q, &oo[0], &oo[1], &oo[2], &oo[3]))
+        return NULL;
+    int exact = bo[1] == Py_None;
+    if (n < 1 || block < 1 || xshift < 0 || xshift > 63 || rshift < 0 || rshift > 63) {
+        PyErr_SetString(PyExc_ValueError, "unpack_packed: bad n, block or shift");
+        return NULL;
+    }
+    Py_buffer bb[4], ob[4];
+    int gb = 0, go = 0, code = 0;
+    PyObject *res = NULL;
+    for (; gb < 4; gb++) {
+        if (bo[gb] == Py_None)
+            continue;
+        if (PyObject_GetBuffer(bo[gb], &bb[gb], PyBUF_C_CONTIGUOUS) < 0)
+            goto done;
+    }
+    for (; go < 4; go++) {
+        if (oo[go] == Py_None)
+            continue;
+        if (get_buf(oo[go], &ob[go], 8, 1, "out") < 0)
+            goto done;
+        if (ob[go].len / 8 < n) {
+            PyErr_SetString(PyExc_ValueError, "unpack_packed: output too short");
+            go++;
+            goto done;
+        }
+    }
+    if (!exact && (oo[1] == Py_None || oo[2] == Py_None || bo[3] == Py_None)) {
+        PyErr_SetString(PyExc_ValueError, "unpack_packed: rank streams and outputs go together");
+        goto done;
+    }
+    {
+        double *x = (double *)ob[0].buf, *w = (double *)ob[3].buf;
+        double *lo = exact ? NULL : (double *)ob[1].buf, *hi = exact ? NULL : (double *)ob[2].buf;
+        int nomem = 0;
+        Py_BEGIN_ALLOW_THREADS
+        uint64_t *t = (uint64_t *)PyMem_RawMalloc((size_t)(4 * n + 4) * 8);
+        if (t == NULL) {
+            nomem = 1;
+        } else {
+            uint64_t *kx = t, *kr = t + n + 1, *kw = t + 2 * n + 2, *ku = t + 3 * n + 3;
+            const uint64_t LIM = UINT64_C(1) << 62;
+            /* streams: x codes (n - 1), rmin codes (n - 1), w (n), u codes (n) */
+            if (read_stream((const uint8_t *)bb[0].buf, bb[0].len, n - 1, block, ku) ||
+                read_stream((const uint8_t *)bb[2].buf, bb[2].len, n, block, kw) ||
+                (!exact && read_stream((const uint8_t *)bb[1].buf, bb[1].len, n - 1, block, kx))) {
+                code = 1;
+            } else {
+                /* ku holds the x codes for now; kx the rmin codes */
+                unpredict(xstart, xshift, ku, n - 1, kr);  /* kr: the value keys */
+                for (Py_ssize_t i = 0; i < n; i++)
+                    x[i] = key_value(kr[i]);
+                if (!exact) {
+                    unpredict(rstart, rshift, kx, n - 1, kr);  /* kr: rmin_q */
+                    if (read_stream((const uint8_t *)bb[3].buf, bb[3].len, n, block, ku))
+                        code = 1;
+                    uint64_t u = 0;
+                    for (Py_ssize_t i = 0; i < n && !code; i++) {
+                        u += unzigzag(ku[i]);
+                        ku[i] = u;
+                    }
+                    for (Py_ssize_t i = 0; i < n && !code; i++)
+                        code = kr[i] > LIM ? 2 : 0;
+                    for (Py_ssize_t i = 0; i < n && !code; i++)
+                        code = kw[i] > LIM ? 3 : 0;
+                    for (Py_ssize_t i = 0; i < n && !code; i++)
+                        code = ku[i] > LIM ? 4 : 0;
+                }
+                for (Py_ssize_t i = 0; i < n && !code; i++)
+                    code = isnan(x[i]) || (i > 0 && !(x[i] > x[i - 1])) ? 5 : 0;
+                if (!code && exact) {
+                    for (Py_ssize_t i = 0; i < n && !code; i++) {
+                        code = kw[i] >= (UINT64_C(1) << 53) ? 7 : 0;
+                        w[i] = (double)kw[i];
+                    }
+                } else if (!code) {
+                    for (Py_ssize_t i = 0; i < n; i++) {
+                        lo[i] = (double)kr[i] * q;
+                        w[i] = (double)kw[i] * q;
+                        hi[i] = (double)(kr[i] + kw[i] + ku[i]) * q;
+                        if (!(isfinite(lo[i]) && isfinite(w[i]) && isfinite(hi[i])))
+                            code = 6;
+                    }
+                }
+            }
+            PyMem_RawFree(t);
+        }
+        Py_END_ALLOW_THREADS
+        if (nomem) {
+            PyErr_NoMemory();
+            goto done;
+        }
+        res = PyLong_FromLong(code);
+    }
+done:
+    for (int i = 0; i < go; i++)
+        if (oo[i] != Py_None)
+            PyBuffer_Release(&ob[i]);
+    for (int i = 0; i < gb; i++)
+        if (bo[i] != Py_None)
+            PyBuffer_Release(&bb[i]);
+    return res;
+}
+
 /* weights_ok(w) -> index of the first weight that is NaN, infinite or negative, or -1. */
 static PyObject *
 k_weights_ok(PyObject *self, PyObject *args)
@@ -666,6 +982,10 @@ static PyMethodDef methods[] = {
      "refine(x, w, cells, pidx, cntpar, keys, weights, parents) -> groups"},
     {"merge_bounds", k_merge_bounds, METH_VARARGS,
      "merge_bounds(x, rmin, rmax, w, offsets, totals, z, lo, hi, wz) -> count"},
+    {"bitpack", k_bitpack, METH_VARARGS, "bitpack(v, block, out) -> bytes written"},
+    {"bitunpack", k_bitunpack, METH_VARARGS, "bitunpack(data, m, block, out)"},
+    {"unpack_packed", k_unpack_packed, METH_VARARGS,
+     "unpack_packed(xbits, rbits, wbits, ubits, n, block, xstart, xshift, rstart, rshift, q, x, lo, hi, w)"},
     {"compact", k_compact, METH_VARARGS, "compact(x, w, xout, wout, wmiss) -> kept"},
     {"weights_ok", k_weights_ok, METH_VARARGS, "weights_ok(w) -> first bad index or -1"},
     {NULL, NULL, 0, NULL},

@@ -47,6 +47,7 @@ import msgpack
 import numpy as np
 
 from .errors import FormatError
+from . import summary as _core
 from .summary import Summary, float_keys, key_values
 
 __all__ = [
@@ -270,7 +271,15 @@ def _slot_bits(w, cnt, first):
 
 def _pack_streams(streams: list[np.ndarray]) -> list[bytes]:
     """Bit-pack uint64 streams: each as one width byte per block of 32 values, then every
-    block's values in that many bits, least significant bit first (docs/FORMAT.md)."""
+    block's values in that many bits, least significant bit first (docs/FORMAT.md).
+    The compiled kernel writes the same bytes in one pass."""
+    if _core._K is not None:
+        out = []
+        for a in streams:
+            a = np.ascontiguousarray(a, dtype=np.uint64)
+            buf = np.empty(-(-a.size // _BLOCK) + 8 * a.size + 8, np.uint8)
+            out.append(buf[:_core._K.bitpack(a, _BLOCK, buf)].tobytes())
+        return out
     counts = [a.size for a in streams]
     nbs = [-(-m // _BLOCK) for m in counts]
     v = np.zeros(sum(nbs) * _BLOCK, np.uint64)
@@ -327,6 +336,13 @@ def _check_bits(b: bytes, m: int, key: str, what: str) -> np.ndarray:
 
 def _unpack_streams(bufs: list[bytes], counts: list[int], widths: list[np.ndarray]) -> list[np.ndarray]:
     """The values of streams checked by :func:`_check_bits`."""
+    if _core._K is not None:
+        out = []
+        for b, m in zip(bufs, counts):
+            v = np.empty(m, np.uint64)
+            _core._K.bitunpack(b, m, _BLOCK, v)
+            out.append(v)
+        return out
     nbs = [ws.size for ws in widths]
     data = b"".join(b[nb:] for b, nb in zip(bufs, nbs))
     words = np.zeros(len(data) // 8 + 2, "<u8")   # a zero word past the end for the last spill
@@ -546,16 +562,27 @@ def _unpack_packed(p: dict, v: dict, what: str):
     counts = {"x_bits": n - 1, "w_bits": n} if exact else \
         {"x_bits": n - 1, "rmin_bits": n - 1, "w_bits": n, "u_bits": n}
     widths = [_check_bits(p[key], m, key, what) for key, m in counts.items()]
+    if _core._K is not None:
+        # the compiled decoder: the same numbers in one pass; on any complaint the numpy
+        # route below runs to raise its own message
+        x, w = np.empty(n), np.empty(n)
+        lo, hi = (None, None) if exact else (np.empty(n), np.empty(n))
+        code = _core._K.unpack_packed(p["x_bits"], None if exact else p["rmin_bits"], p["w_bits"],
+                                      None if exact else p["u_bits"], n, _BLOCK, p["x_start"],
+                                      p["x_shift"], 0 if exact else p["rmin_start"],
+                                      0 if exact else p["rmin_shift"], q, x, lo, hi, w)
+        if code == 0:
+            return "floats", x, lo, hi, w
     streams = dict(zip(counts, _unpack_streams([p[k] for k in counts], list(counts.values()), widths)))
     x = key_values(_unpredict(p["x_start"], p["x_shift"], streams["x_bits"]))
     if exact:
-        return x, q, None, streams["w_bits"], None
+        return "ints", x, q, None, streams["w_bits"], None
     lo = _unpredict(p["rmin_start"], p["rmin_shift"], streams["rmin_bits"])
     w, u = streams["w_bits"], np.cumsum(_unzigzag(streams["u_bits"]), dtype=np.uint64)
     for key, a in (("rmin", lo), ("w", w), ("u", u)):
         if bool(np.any(a > np.uint64(_MAX_FIELD))):
             raise FormatError(f"{what}: expected quantized {key} values at most 2**62, got {int(a.max())}")
-    return x, q, lo, w, u
+    return "ints", x, q, lo, w, u
 
 
 def summary_from_payload(p, what: str = "summary", version: int = FORMAT_VERSION) -> Summary:
@@ -588,14 +615,25 @@ def summary_from_payload(p, what: str = "summary", version: int = FORMAT_VERSION
     if (n == 0) != (v["count"] == 0) or (n == 0 and v["total_weight"] != 0.0):
         raise FormatError(f"{what}: expected entries exactly when count > 0, got n={n}, "
                           f"count={v['count']}, total_weight={v['total_weight']!r}")
+    fast = None
     if layout == "packed":
-        x, q, lo_q, w_q, u_q = _unpack_packed(p, v, what)
+        got = _unpack_packed(p, v, what)
+        if got[0] == "floats":
+            x, fast = got[1], got[2:]
+        else:
+            x, q, lo_q, w_q, u_q = got[1:]
     else:
         x = _array(p, "x", "x_type", n, what)
-    if np.isnan(x).any() or (n > 1 and not bool(np.all(x[1:] > x[:-1]))):
+    if fast is None and (np.isnan(x).any() or (n > 1 and not bool(np.all(x[1:] > x[:-1])))):  # (the kernel checked)
         raise FormatError(f"{what}: expected strictly increasing entry values, got unsorted or NaN values")
     common = dict(count=v["count"], missing_count=v["missing_count"],
                   missing_weight=v["missing_weight"], dtype=v["dtype"])
+    if layout == "packed" and v["exact"] and fast is not None:
+        s = Summary._exact_from_entries(x, fast[2], **common)
+        if s.total_weight != v["total_weight"]:
+            raise FormatError(f"{what}: expected total_weight {s.total_weight!r} from the entries, "
+                              f"got {v['total_weight']!r}")
+        return s
     if layout == "packed" and v["exact"]:
         if bool(np.any(w_q >= np.uint64(2**53))):
             raise FormatError(f"{what}: expected integer weights below 2**53 in an exact 'packed' payload, "
@@ -619,7 +657,9 @@ def summary_from_payload(p, what: str = "summary", version: int = FORMAT_VERSION
         return s
     if v["exact"]:
         raise FormatError(f"{what}: expected exact=false for layout {layout!r}, got true")
-    if layout == "packed":
+    if fast is not None:
+        lo, hi, w = fast
+    elif layout == "packed":
         with np.errstate(over="ignore"):
             lo = lo_q.astype(np.float64) * q
             w = w_q.astype(np.float64) * q
@@ -635,7 +675,9 @@ def summary_from_payload(p, what: str = "summary", version: int = FORMAT_VERSION
         else:
             hi = _array(p, "rmax", "rank_type", n, what)
     total = v["total_weight"]
-    if not (_finite_nonneg(lo) and _finite_nonneg(w) and _finite_nonneg(hi) and bool(np.all(lo <= hi))):
+    # the kernel checked finiteness; its fields are >= 0 and ordered by construction
+    if fast is None and not (_finite_nonneg(lo) and _finite_nonneg(w) and _finite_nonneg(hi)
+                             and bool(np.all(lo <= hi))):
         raise FormatError(f"{what}: expected finite rank bounds with 0 <= rmin <= rmax and w >= 0")
     # outward rounding may lift rmax above W by less than one step (2**-23 W)
     if n and float(hi.max()) > total * _RMAX_OVER + _TOLERANCE:
