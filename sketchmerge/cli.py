@@ -114,7 +114,7 @@ def make_parser() -> argparse.ArgumentParser:
     g.add_argument("--scheduler", metavar="ADDRESS", help="an existing Dask scheduler")
     g.add_argument("--scheduler-file", metavar="FILE", help="a Dask scheduler file")
     b.add_argument("--workers", type=int, help="threads of the embedded local scheduler (default: all cores)")
-    b.add_argument("--fan-in", type=int, help="children per merge node (default 8)")
+    b.add_argument("--fan-in", type=int, help="children per merge node (default 16)")
     b.add_argument("--full", action="store_true", help="ignore cached summaries")
     b.add_argument("--keep", type=int, help="versions to keep (default 10; the current one always)")
     _add_common(b)

@@ -13,7 +13,7 @@ __all__ = ["DEFAULTS", "get"]
 
 DEFAULTS: dict[str, object] = {
     "bins": 256,                      # most bins per feature
-    "fan_in": 8,                      # expected children per merge node
+    "fan_in": 16,                     # expected children per merge node
     "byte_budget": 64 << 20,          # group small Parquet row groups up to this many bytes
     "keep": 10,                       # versions kept by gc (the current one always)
     "gc_grace_seconds": 6 * 3600.0,   # never delete a cached blob younger than this

@@ -469,7 +469,9 @@ def _plan(n: int, rank_error: float, extra: list[str] = ()):
 
     addrs = sorted(_addresses(n) + list(extra))
     keys = [hashlib.sha256(a.encode()).hexdigest() for a in addrs]
-    return plan_tree(keys, addrs, 8, rank_error, "bench"), addrs
+    from sketchmerge import config
+
+    return plan_tree(keys, addrs, int(config.get("fan_in")), rank_error, "bench"), addrs
 
 
 def merges(cfg: Config, p: Paths) -> dict:

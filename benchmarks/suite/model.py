@@ -11,7 +11,7 @@ Fitted on the smallest fully merged tree (:func:`cases.merges`):
 
 * ``c_entry``  CPU seconds per child entry merged, per feature (merge + prune + codec).
 
-Model, for R rows, f features, units of u rows (U = R/u), fan-in 8, the node counts and
+Model, for R rows, f features, units of u rows (U = R/u), the default fan-in, the node counts and
 capacities of :func:`sketchmerge.tree.plan_tree`:
 
     sketch CPU  = R * ((f + 1) * c_read + f * c_sketch) + U * c_unit
