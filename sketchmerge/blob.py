@@ -59,6 +59,7 @@ __all__ = [
     "decode_envelope",
     "decode_summary",
     "decode_summary_set",
+    "open_summary_set",
     "encode_envelope",
     "encode_summary",
     "encode_summary_set",
@@ -143,14 +144,47 @@ def _versions_text(versions) -> str:
     return v[0] if len(v) == 1 else ", ".join(v[:-1]) + " or " + v[-1]
 
 
+_BIN_HEADS = {0xC4: 2, 0xC5: 3, 0xC6: 5}  # msgpack bin 8/16/32: bytes before the data
+
+
+def _envelope_map(blob: bytes) -> dict | None:
+    """The envelope map with its payload as a memoryview into ``blob`` (no copy of what may
+    be megabytes), or None when the bytes are not a plain well-formed envelope."""
+    n = len(blob)
+    try:
+        up = msgpack.Unpacker(None, raw=False, strict_map_key=True, use_list=True,
+                              max_buffer_size=max(n, 1), max_str_len=min(n, 1 << 20), max_bin_len=n,
+                              max_array_len=16, max_map_len=16, max_ext_len=0)
+        up.feed(blob)
+        env = {}
+        for _ in range(up.read_map_header()):
+            key = up.unpack()
+            if not isinstance(key, str) or key in env:
+                return None
+            start = up.tell()
+            if key == "payload" and blob[start] in _BIN_HEADS:
+                up.skip()
+                env[key] = memoryview(blob)[start + _BIN_HEADS[blob[start]]:up.tell()]
+            else:
+                env[key] = up.unpack()
+        if up.tell() != n:
+            return None
+    except Exception:  # noqa: BLE001 - malformed: the plain decoder reports it
+        return None
+    return env
+
+
 def _open_envelope(blob, kind: str, what: str, versions) -> tuple[int, bytes]:
-    """Check an envelope's kind, version and checksum; return ``(version, payload)``."""
+    """Check an envelope's kind, version and checksum; return ``(version, payload)``
+    (the payload may be a memoryview into the blob)."""
     if not isinstance(blob, (bytes, bytearray, memoryview)):
         raise FormatError(f"{what}: expected bytes, got {type(blob).__name__}")
     blob = bytes(blob)
     if len(blob) > _MAX_BLOB:
         raise FormatError(f"{what}: expected at most {_MAX_BLOB} bytes, got {len(blob)}")
-    env = _unpack(blob, what, max_array=16, max_map=16)
+    env = _envelope_map(blob)
+    if env is None:  # anything unusual: the plain decoder says what is wrong
+        env = _unpack(blob, what, max_array=16, max_map=16)
     if not isinstance(env, dict):
         raise FormatError(f"{what}: expected a msgpack map envelope, got {type(env).__name__}")
     got_kind = env.get("kind")
@@ -165,7 +199,7 @@ def _open_envelope(blob, kind: str, what: str, versions) -> tuple[int, bytes]:
                           f"(written by a {hint} sketchmerge?)")
     payload = env.get("payload")
     crc = env.get("crc32")
-    if not isinstance(payload, bytes):
+    if not isinstance(payload, (bytes, memoryview)):
         raise FormatError(f"{what}: expected binary payload, got {type(payload).__name__}")
     if type(crc) is not int:
         raise FormatError(f"{what}: expected an integer crc32, got {_short(crc)}")
@@ -181,7 +215,7 @@ def _open_envelope(blob, kind: str, what: str, versions) -> tuple[int, bytes]:
 
 def decode_envelope(blob, kind: str, what: str = "blob", versions=READ_VERSIONS) -> bytes:
     """Check an envelope's kind, version (one of ``versions``) and checksum; return the payload bytes."""
-    return _open_envelope(blob, kind, what, tuple(versions))[1]
+    return bytes(_open_envelope(blob, kind, what, tuple(versions))[1])
 
 
 # --------------------------------------------------------------------------- packed streams
@@ -726,13 +760,72 @@ def encode_summary_set(summaries: dict, meta: dict | None = None, version: int =
 
 def decode_summary_set(blob) -> tuple[dict, dict]:
     """Decode a ``sketchmerge.summary-set`` blob (any readable version) into ``(summaries, meta)``."""
+    opened = open_summary_set(blob)
+    return {n: opened.summary(i) for i, n in enumerate(opened.names)}, opened.meta
+
+
+class OpenSummarySet:
+    """A checked summary-set blob whose summaries are decoded one at a time (:meth:`summary`),
+    so that a merge holds one feature's decoded summaries, not every feature's."""
+
+    def __init__(self, names: list, payloads, meta: dict, version: int, what: str):
+        self.names, self.meta, self._payloads, self._version, self._what = names, meta, payloads, version, what
+
+    def summary(self, i: int) -> Summary:
+        p = self._payloads[i]
+        what = f"{self._what} feature {_short(self.names[i])}"
+        if isinstance(p, memoryview):  # a lazily indexed payload: unpack it now
+            p = _unpack(p, what)
+        return summary_from_payload(p, what, self._version)
+
+
+def _index_summary_set(payload: bytes):
+    """``(names, [memoryview of each summary's msgpack], meta)`` without unpacking the
+    summaries, or None when the payload is anything but a well-formed set (the full
+    decoder then says what is wrong)."""
+    n = len(payload)
+    try:
+        up = msgpack.Unpacker(None, raw=False, strict_map_key=True, use_list=True,
+                              max_buffer_size=max(n, 1), max_str_len=min(n, 1 << 20), max_bin_len=n,
+                              max_array_len=min(n, 1 << 20), max_map_len=min(n, 1 << 12), max_ext_len=0)
+        up.feed(payload)
+        if up.read_map_header() != 3:
+            return None
+        got = {}
+        for _ in range(3):
+            key = up.unpack()
+            if key in got or key not in ("names", "summaries", "meta"):
+                return None
+            if key == "summaries":
+                spans, start = [], None
+                for _ in range(up.read_array_header()):
+                    start = up.tell()
+                    up.skip()
+                    spans.append((start, up.tell()))
+                got[key] = spans
+            else:
+                got[key] = up.unpack()
+        if up.tell() != n:
+            return None
+    except Exception:  # noqa: BLE001 - malformed: the full decoder reports it
+        return None
+    view = memoryview(payload)
+    return got["names"], [view[a:b] for a, b in got["summaries"]], got["meta"]
+
+
+def open_summary_set(blob) -> OpenSummarySet:
+    """Check a summary-set blob's envelope and structure; decode no summary yet."""
     what = "summary-set blob"
     version, payload = _open_envelope(blob, KIND_SUMMARY_SET, what, READ_VERSIONS)
-    body = _unpack(payload, what + " payload", max_map=1 << 12)
-    if not isinstance(body, dict) or set(body) != {"names", "summaries", "meta"}:
-        got = sorted(map(str, body)) if isinstance(body, dict) else type(body).__name__
-        raise FormatError(f"{what}: expected a map with keys names, summaries, meta, got {_short(got)}")
-    names, sums, meta = body["names"], body["summaries"], body["meta"]
+    idx = _index_summary_set(payload)
+    if idx is not None:
+        names, sums, meta = idx
+    else:
+        body = _unpack(payload, what + " payload", max_map=1 << 12)
+        if not isinstance(body, dict) or set(body) != {"names", "summaries", "meta"}:
+            got = sorted(map(str, body)) if isinstance(body, dict) else type(body).__name__
+            raise FormatError(f"{what}: expected a map with keys names, summaries, meta, got {_short(got)}")
+        names, sums, meta = body["names"], body["summaries"], body["meta"]
     if not isinstance(names, list) or not isinstance(sums, list) or len(names) != len(sums):
         raise FormatError(f"{what}: expected equal-length lists of names and summaries")
     if not all(isinstance(n, str) for n in names) or len(set(names)) != len(names):
@@ -740,5 +833,4 @@ def decode_summary_set(blob) -> tuple[dict, dict]:
     if not isinstance(meta, dict) or not all(isinstance(k, str) and isinstance(v, _META_TYPES)
                                              for k, v in meta.items()):
         raise FormatError(f"{what}: expected meta as a flat map of str to scalars")
-    out = {n: summary_from_payload(p, f"{what} feature {_short(n)}", version) for n, p in zip(names, sums)}
-    return out, meta
+    return OpenSummarySet(names, sums, meta, version, what)

@@ -36,7 +36,7 @@ import numpy as np
 
 from . import config
 from ._version import __version__
-from .blob import FORMAT_VERSION, decode_summary_set, encode_summary_set
+from .blob import FORMAT_VERSION, decode_summary_set, encode_summary_set, open_summary_set
 from .cuts import decode_table, default_rank_error, encode_table, feature_cuts
 from .errors import FormatError, InputError, PublishRaceError, SchedulerUnavailableError, StorageError
 from .summary import Summary
@@ -205,7 +205,25 @@ class _Running:
 
     @staticmethod
     def spare() -> bool:
-        return _ACTIVE[0] < (_THREADS[0] or os.cpu_count() or 1)
+        return _ACTIVE[0] < _threads_here()
+
+
+def _threads_here() -> int:
+    """Threads this process runs tasks on: the embedded scheduler's, a Dask worker's
+    ``nthreads``, or one per core."""
+    if _THREADS[0]:
+        return _THREADS[0]
+    if "distributed" in sys.modules:
+        try:
+            from distributed import get_worker
+
+            wk = get_worker()
+            n = getattr(getattr(wk, "state", None), "nthreads", None) or getattr(wk, "nthreads", None)
+            if n:
+                return int(n)
+        except Exception:  # noqa: BLE001 - not inside a worker
+            pass
+    return os.cpu_count() or 1
 
 
 class _Now:
@@ -273,8 +291,13 @@ def _sketch_columns(unit, spec: BuildSpec, where: str) -> tuple[dict, int]:
     return sums, rows
 
 
-def sketch_unit(unit, spec: BuildSpec, key: str) -> bytes:
-    """Worker task: read one unit, sketch every feature, cache and return the blob."""
+def sketch_unit(unit, spec: BuildSpec, key: str):
+    """Worker task: read one unit, sketch every feature and cache the blob in TABLE.
+
+    Returns ``("stored", key)``: the merge above reads the blob back from the table, so
+    the scheduler holds a key per finished task instead of its blob (a level of the tree
+    waiting for its parent held every one of its blobs).  Without a table, the blob.
+    """
     where = f"unit {unit.address}"
     with _Running():
         sums, rows = with_retries(lambda: _sketch_columns(unit, spec, where),
@@ -282,45 +305,63 @@ def sketch_unit(unit, spec: BuildSpec, key: str) -> bytes:
     blob = encode_summary_set(sums, {"rows": int(rows)})
     if spec.table_url:
         _store(spec.table_url, spec.table_options).put_blob(key, blob)
+        return ("stored", key)
     return blob
 
 
-def _merge_one(parts: list, capacity: int) -> Summary:
+def _merge_one(sets: list, i: int, capacity: int) -> Summary:
+    parts = [s.summary(i) for s in sets]  # this feature's summaries only
     return parts[0].merge(*parts[1:]).prune(capacity)
 
 
 def merge_blobs(blobs: list[bytes], capacity: int) -> bytes:
-    """Merge summary-set blobs feature by feature and prune to ``capacity``."""
-    sets = [decode_summary_set(b) for b in blobs]
-    names = list(sets[0][0])
-    for s, _ in sets[1:]:
-        if list(s) != names:
-            raise FormatError(f"merge: expected the same features in every child, got {list(s)} and {names}")
+    """Merge summary-set blobs feature by feature and prune to ``capacity``.
+
+    Children are opened (checked) first and each feature's summaries are decoded only
+    when that feature is merged, so a merge holds one or two features' decoded children
+    at a time, not all of them.
+    """
+    sets = [open_summary_set(b) for b in blobs]
+    names = sets[0].names
+    for s in sets[1:]:
+        if s.names != names:
+            raise FormatError(f"merge: expected the same features in every child, got {s.names} and {names}")
     parallel = _Running.spare()
-    futs = {n: _submit(parallel, _merge_one, [s[n] for s, _ in sets], capacity) for n in names}
-    out = {n: f.result() for n, f in futs.items()}
-    rows = sum(int(m.get("rows", 0)) for _, m in sets)
+    futs = [_submit(parallel, _merge_one, sets, i, capacity) for i in range(len(names))]
+    out = {}
+    for n, f in zip(names, futs):
+        out[n] = f.result()
+    rows = sum(int(s.meta.get("rows", 0)) for s in sets)
     return encode_summary_set(out, {"rows": rows})
 
 
-def merge_task(children: list, capacity: int, key: str, table_url: str, table_options: dict) -> bytes:
-    """Worker task: merge children (blobs, or cached keys fetched from TABLE) and cache the result."""
+def _is_ref(c) -> bool:
+    return isinstance(c, tuple) and len(c) == 2 and c[0] in ("cached", "stored")
+
+
+def merge_task(children: list, capacity: int, key: str, table_url: str, table_options: dict):
+    """Worker task: merge children (blobs, or keys of blobs in TABLE: cached by an earlier
+    build or stored by this one) and cache the result; returns ``("stored", key)`` (or,
+    without a table, the blob)."""
     st = _store(table_url, table_options) if table_url else None
-    want = [c[1] for c in children if isinstance(c, tuple) and c and c[0] == "cached"]
+    want = [c[1] for c in children if _is_ref(c)]
     fetched = st.get_blobs(want) if (want and st is not None) else {}
     blobs = []
     for c in children:
-        if isinstance(c, tuple) and c and c[0] == "cached":
-            b = fetched.get(c[1])
+        if _is_ref(c):
+            b = fetched.pop(c[1], None)
             if b is None:
-                raise FormatError(f"cached blob {c[1]} vanished from the table store during the build")
+                what = "cached" if c[0] == "cached" else "stored"
+                raise FormatError(f"{what} blob {c[1]} vanished from the table store during the build")
             blobs.append(b)
         else:
             blobs.append(c)
     with _Running():
         out = merge_blobs(blobs, capacity)
+    del blobs
     if st is not None:
         st.put_blob(key, out)
+        return ("stored", key)
     return out
 
 
@@ -561,6 +602,11 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
     else:
         root_blob = _run_graph(plan, needed, unit_of, spec, cached, client, scheduler,
                                scheduler_file, workers, json_mode)
+        if _is_ref(root_blob):
+            key = root_blob[1]
+            root_blob = store.get_blob(key)
+            if root_blob is None:
+                raise FormatError(f"root blob {key} vanished from {store.url} during the build")
     sets, meta = decode_summary_set(root_blob)
     rows = int(meta.get("rows", 0))
     if rows == 0:
