@@ -174,7 +174,7 @@ def bench_blobs(data, w, b, reps):
     for label, s in cases.items():
         blob = s.to_bytes()
         p = summary_to_payload(s)
-        arrays = sum(len(p[k]) for k in ("x", "w", "rmin", "rmax") if k in p)
+        arrays = sum(len(v) for k, v in p.items() if isinstance(v, bytes))  # every array or bit stream
         t = best({"encode": s.to_bytes, "decode": lambda blob=blob: Summary.from_bytes(blob)}, reps)
         print(f"    {label:34s} layout {p['layout']:6s} {arrays / len(s):5.1f} B/entry arrays, "
               f"{len(blob) / len(s):6.2f} B/entry blob ({len(s)} entries), "
