@@ -170,6 +170,7 @@ _POOL = None
 _POOL_LOCK = threading.Lock()
 _ACTIVE = [0]  # sketch and merge tasks running in this process
 _THREADS = [None]  # threads the embedded scheduler was given (None: one per core)
+_CPUS = os.cpu_count() or 1
 
 
 def _feature_pool():
@@ -223,7 +224,7 @@ def _threads_here() -> int:
                 return int(n)
         except Exception:  # noqa: BLE001 - not inside a worker
             pass
-    return os.cpu_count() or 1
+    return _CPUS
 
 
 class _Now:
