@@ -27,6 +27,19 @@ GOLDEN = sorted(k for k in EXPECTED if k.startswith("summary-v1-")) + \
     sorted(k for k in EXPECTED_V2 if k.startswith("summary-v2-"))
 
 
+@pytest.fixture(autouse=True, params=["kernels", "numpy"])
+def codec_route(request, monkeypatch):
+    """Every test here runs twice: with the compiled codec kernels (when built) and on the
+    numpy route alone; both must read and write the same bytes."""
+    import sketchmerge.summary as core
+
+    if request.param == "numpy":
+        monkeypatch.setattr(core, "_K", None)
+    elif core._K is None:
+        pytest.skip("compiled kernels not built")
+    return request.param
+
+
 def rng(seed):
     return np.random.default_rng(seed)
 

@@ -28,6 +28,19 @@ from sketchmerge.summary import EXACT_METHODS, exact_entries, float_keys, key_va
 from sketchmerge.weights import hessian
 
 
+@pytest.fixture(autouse=True, params=["kernels", "numpy"])
+def core_route(request, monkeypatch):
+    """Every test here runs twice: with the compiled kernels (when built) and on the numpy
+    route alone, which must give the same results (tests/test_kernels.py compares them)."""
+    import sketchmerge.summary as core
+
+    if request.param == "numpy":
+        monkeypatch.setattr(core, "_K", None)
+    elif core._K is None:
+        pytest.skip("compiled kernels not built")
+    return request.param
+
+
 def rng(seed):
     return np.random.default_rng(seed)
 
