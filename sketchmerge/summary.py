@@ -756,13 +756,7 @@ def _direct(x, w, capacity, stats=None):
             wmin = float(dw[0])
         if wmax is None:
             wmax = float(dw[-1])
-        dex = _exclusive_cumsum(dw)
-        first_d = np.searchsorted(dpar, np.arange(npar))
-        nd = np.bincount(dpar, minlength=npar)
-        dc = par_c[dpar] + (dex - dex[first_d][dpar])
-        if t_idx.shape[0]:
-            p = _locate(d[t_idx], dc + dw, dw, first_d[t_par], nd[t_par])
-            res_k[t_idx], res_lo[t_idx], res_w[t_idx] = dk[p], dc[p], dw[p]
+        _answer_targets(dk, dw, dpar, par_c, npar, d, t_idx, t_par, res_k, res_lo, res_w)
         return _entries(kmin, kmax, res_k, res_lo, res_w, wmin, wmax, total)
     # the map left many rows in the targets' cells (values packed into a few
     # mantissa steps): refine those cells by finer histograms, level by level
@@ -803,13 +797,7 @@ def _direct(x, w, capacity, stats=None):
             dw = (_run_lengths(starts, ks.shape[0]).astype(_F8) if wr is None
                   else np.add.reduceat(wr[o], starts))
             dpar = sorted_par[starts]
-            dex = _exclusive_cumsum(dw)
-            first_d = np.searchsorted(dpar, np.arange(npar))
-            nd = np.bincount(dpar, minlength=npar)
-            dc = par_c[dpar] + (dex - dex[first_d][dpar])
-            if t_idx.shape[0]:
-                p = _locate(d[t_idx], dc + dw, dw, first_d[t_par], nd[t_par])
-                res_k[t_idx], res_lo[t_idx], res_w[t_idx] = dk[p], dc[p], dw[p]
+            _answer_targets(dk, dw, dpar, par_c, npar, d, t_idx, t_par, res_k, res_lo, res_w)
             break
         if first_mn is not None:  # the compiled first level measured the first parents
             pmn, pmx, first_mn = first_mn, first_mx, None
@@ -862,6 +850,19 @@ def _direct(x, w, capacity, stats=None):
         par_c, par_h = sc[newpar], hs[newpar]
         has_t = np.ones(newpar.shape[0], bool)
     return _entries(kmin, kmax, res_k, res_lo, res_w, wmin, wmax, total)
+
+
+def _answer_targets(dk, dw, dpar, par_c, npar, d, t_idx, t_par, res_k, res_lo, res_w):
+    """Answer targets ``t_idx`` from the distinct keys ``dk`` (weights ``dw``) of their
+    parents ``dpar`` (in key order; parent ``j`` starts at rank ``par_c[j]``): each
+    target gets the first key whose weight at or below reaches it, with its exact ranks."""
+    dex = _exclusive_cumsum(dw)
+    first_d = np.searchsorted(dpar, np.arange(npar))
+    nd = np.bincount(dpar, minlength=npar)
+    dc = par_c[dpar] + (dex - dex[first_d][dpar])
+    if t_idx.shape[0]:
+        p = _locate(d[t_idx], dc + dw, dw, first_d[t_par], nd[t_par])
+        res_k[t_idx], res_lo[t_idx], res_w[t_idx] = dk[p], dc[p], dw[p]
 
 
 def _entries(kmin, kmax, res_k, res_lo, res_w, wmin, wmax, total):
