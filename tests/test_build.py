@@ -425,3 +425,25 @@ def test_a_bad_column_on_the_pool_names_it(tmp_path, monkeypatch):
     monkeypatch.setattr(job._Running, "spare", staticmethod(lambda: True))
     with pytest.raises(InputError, match="'big'"):
         sketchmerge.build(str(tmp_path / "d"), str(tmp_path / "t"), bins=16)
+
+
+def test_a_blob_vanishing_during_the_build_fails_it_and_keeps_the_published_version(tmp_path, monkeypatch):
+    # merges read their children back from the table: if one disappears (a gc run by
+    # hand with no grace period, a bucket rule), the build stops with a FormatError
+    # naming the blob, and the version already published stays current and loadable
+    from sketchmerge.errors import FormatError
+    from sketchmerge.store import TableStore
+
+    frames = [make_frame(6000, s) for s in range(3)]
+    write_hive(str(tmp_path / "d"), frames, rows_per_group=2000)
+    sketchmerge.build(str(tmp_path / "d"), str(tmp_path / "t"), bins=16, workers=2)
+    before = sketchmerge.load(str(tmp_path / "t"))
+    write_hive(str(tmp_path / "d2"), frames + [make_frame(6000, 9)], rows_per_group=2000)
+    real = TableStore.get_blobs
+    monkeypatch.setattr(TableStore, "get_blobs", lambda self, keys: {k: v for k, v in real(self, keys).items()
+                                                                      if k != sorted(keys)[0]})
+    with pytest.raises(FormatError, match="vanished from the table store"):
+        sketchmerge.build(str(tmp_path / "d2"), str(tmp_path / "t"), bins=16, workers=2)
+    monkeypatch.undo()
+    after = sketchmerge.load(str(tmp_path / "t"))
+    assert after.version == before.version and after.content_sha256 == before.content_sha256
