@@ -149,6 +149,7 @@ _SAMPLE = 2048          # strided sample that shapes the first-level map
 _FINISH_ROWS = 8192     # rows left in refined cells: sort them instead of bucketing again
 _SORT_DIV = 4           # targets' cells hold at most 1/_SORT_DIV of the rows: sort them at once
 _FIRST_BITS = 16        # at most 2**16 first-level cells
+_WIDE_REPEATS = 8       # record the cells' key ranges when the sample has this many repeats
 _DIRECT_ROWS = 24       # direct pruned construction from this many rows per unit of capacity
 _SCRATCH_MAX = 1 << 20  # scratch buffers up to this many elements are kept per thread
 EXACT_METHODS = ("auto", "sort", "count", "radix", "buckets")
@@ -346,7 +347,7 @@ def _exact_buckets(x, w):
     rows of buckets holding several values are sorted."""
     n = x.shape[0]
     k = float_keys(x, out=_scratch("keys", n, np.uint64))
-    cells, m, _ = _first_cells(x, n, *_first_map(x, w, n, float(x.min()), float(x.max())))
+    cells, m, _ = _first_cells(x, n, *_first_map(x, w, n, float(x.min()), float(x.max()))[:5])
     cnt = np.bincount(cells, minlength=m)
     cmin = np.full(m, _U64_MAX, dtype=np.uint64)
     cmax = np.zeros(m, dtype=np.uint64)
@@ -502,9 +503,11 @@ def _first_map(x, w, n, xmin, xmax):
     never need refining.  Any monotone map is correct; the map only decides
     how many rows the later levels see.
 
-    Returns the map's parameters ``(emin, ncell, base, size, heavy)``: per
-    binade from ``emin`` its cell count and first cell, the cell count before
-    the point mass's split, and the point mass's key (or None).
+    Returns the map's parameters ``(emin, ncell, base, size, heavy, wide)``:
+    per binade from ``emin`` its cell count and first cell, the cell count
+    before the point mass's split, the point mass's key (or None), and whether
+    the first level should also record each cell's key range (the sample has
+    repeats, so cells may hold a single value).
     :func:`_first_level` applies the map with numpy, the compiled kernel in
     one pass.
     """
@@ -516,6 +519,13 @@ def _first_map(x, w, n, xmin, xmax):
     heavy = None
     sorted_k = np.sort(sk)
     starts = _run_starts(sorted_k)
+    # Few repeats in the sample: far more distinct values than cells, so no cell
+    # holds a single value and the cells' key ranges are not worth recording.
+    # (d distinct values, equally frequent, give about s^2 / 2d repeated pairs in a
+    # sample of s; at most 2^16 + 2 cells and s = 2048 give 32 or more, and
+    # unequal frequencies give more.)
+    repeats = 0 if starts is None else sorted_k.shape[0] - starts.shape[0]
+    wide = repeats >= _WIDE_REPEATS
     if starts is not None and starts.shape[0] > 1:
         runs = _run_lengths(starts, sorted_k.shape[0])
         top = int(np.argmax(runs))
@@ -534,7 +544,7 @@ def _first_map(x, w, n, xmin, xmax):
     np.minimum(ncell, 1 << 16, out=ncell)  # a binade resolves at most 16 mantissa bits here
     base = np.cumsum(ncell) - ncell
     size = int(base[-1] + ncell[-1])
-    return emin, ncell, base, size, heavy
+    return emin, ncell, base, size, heavy, wide
 
 
 def _first_cells(x, n, emin, ncell, base, size, heavy):
@@ -571,37 +581,47 @@ def _first_cells(x, n, emin, ncell, base, size, heavy):
     return cells, size, heavy_cell
 
 
-def _first_level(x, w, n, emin, ncell, base, size, heavy_key):
+def _first_level(x, w, n, emin, ncell, base, size, heavy_key, wide=True):
     """The first level: every row's cell and, per cell, the row count, the weight
-    (summed in row order) and the smallest and largest key.
+    (summed in row order) and, when ``wide``, the smallest and largest key.
 
-    Returns ``(cells, m, heavy_cell, cnt, hw, kmin, kmax)``; ``cells`` is a
-    scratch buffer.  The compiled kernel does it in one pass; the numpy route
-    computes the same numbers (np.bincount also sums in row order).
+    Returns ``(cells, m, heavy_cell, cnt, hw, kmin, kmax)``; ``kmin`` and
+    ``kmax`` are None unless ``wide``.  ``cells`` is a scratch buffer (int32
+    from the compiled kernel, which does it all in one pass, int64 from
+    numpy); the numpy route computes the same numbers (np.bincount also sums
+    in row order).
     """
     if _K is not None and x.flags.c_contiguous and (w is None or w.flags.c_contiguous):
         m = size + 2 if heavy_key is not None else size
         heavy = _heavy_cell(heavy_key, emin, ncell, base) if heavy_key is not None else -1
-        cells = _scratch("cells", n, np.int64)
-        table = _scratch("table", 4 * m, np.uint64).reshape(m, 4)  # row c: a cell's count, weight, key range
-        _K.first_level(x, w, emin, ncell, base,
-                       None if heavy_key is None else (float(key_values(heavy_key)), heavy - 1),
-                       cells, table.reshape(-1))
+        words = 4 if wide else 2
+        table = _scratch("table", words * m, np.uint64).reshape(m, words)  # a cell's count, weight[, key range]
+        cells = _scratch("cells32", n, np.int32)  # half the bytes of int64: the refine pass reads them
+        _K.first_level(x, w, emin, ncell, base, _heavy_arg(heavy_key, heavy), cells,
+                       table.reshape(-1), wide)
         # strided views of the scratch table; every later use copies what it keeps
-        cnt, kmin, kmax = table[:, 0].view(np.int64), table[:, 2], table[:, 3]
+        cnt = table[:, 0].view(np.int64)
+        kmin, kmax = (table[:, 2], table[:, 3]) if wide else (None, None)
         hw = None if w is None else table[:, 1].view(_F8)
     else:
         cells, m, heavy = _first_cells(x, n, emin, ncell, base, size, heavy_key)
         cnt = np.bincount(cells, minlength=m)
         hw = None if w is None else np.bincount(cells, weights=w, minlength=m)
-        k = float_keys(x, out=_scratch("binade", n, np.uint64))
-        kmin = np.full(m, _U64_MAX, np.uint64)
-        kmax = np.zeros(m, np.uint64)
-        np.minimum.at(kmin, cells, k)
-        np.maximum.at(kmax, cells, k)
+        kmin = kmax = None
+        if wide:
+            k = float_keys(x, out=_scratch("binade", n, np.uint64))
+            kmin = np.full(m, _U64_MAX, np.uint64)
+            kmax = np.zeros(m, np.uint64)
+            np.minimum.at(kmin, cells, k)
+            np.maximum.at(kmax, cells, k)
     if hw is None:
         hw = cnt.astype(_F8)
     return cells, m, heavy, cnt, hw, kmin, kmax
+
+
+def _heavy_arg(heavy_key, heavy):
+    """The kernels' form of the point mass: None or (value, cell it splits)."""
+    return None if heavy_key is None else (float(key_values(heavy_key)), heavy - 1)
 
 
 def _locate(dv, cend, h, lo, cnt):
@@ -697,10 +717,12 @@ def _direct(x, w, capacity, stats=None):
     if not total > 0.0:
         return None
     kmin, kmax = float_keys(np.array([xmin, xmax]))
-    emin, ncell, base, size, heavy_key = _first_map(x, w, n, xmin, xmax)
-    cells, m, heavy, cnt, hw, first_mn, first_mx = _first_level(x, w, n, emin, ncell, base, size, heavy_key)
+    emin, ncell, base, size, heavy_key, wide = _first_map(x, w, n, xmin, xmax)
+    cells, m, heavy, cnt, hw, first_mn, first_mx = _first_level(x, w, n, emin, ncell, base, size,
+                                                                heavy_key, wide)
     occ = np.flatnonzero(cnt)
-    multi = occ[first_mn[occ] != first_mx[occ]]
+    # without key ranges (not wide) every occupied cell counts as holding several values
+    multi = occ if first_mn is None else occ[first_mn[occ] != first_mx[occ]]
     if multi.shape[0] == 0:
         # every occupied cell holds one value: the histogram is the exact summary
         return key_values(first_mn[occ]), None, (cnt[occ] if w is None else hw[occ]), total
@@ -710,12 +732,15 @@ def _direct(x, w, capacity, stats=None):
         nmulti = int(cnt[multi].sum())
         if nmulti * _SORT_DIV > n and nmulti > _FINISH_ROWS:
             return None  # the exact methods
-        pidx = np.full(m, -1, np.int64)
+        pidx = np.full(m, -1, np.int32)
         pidx[multi] = np.arange(multi.shape[0])
         dk, dw, _ = _refine(x, w, cells, pidx, cnt[multi], nmulti)
-        one = occ[first_mn[occ] == first_mx[occ]]
-        keys = np.concatenate((first_mn[one], dk))
-        wts = np.concatenate(((cnt[one] if w is None else hw[one]).astype(_F8), dw))
+        if first_mn is None:
+            keys, wts = dk.copy(), dw.copy()
+        else:
+            one = occ[first_mn[occ] == first_mx[occ]]
+            keys = np.concatenate((first_mn[one], dk))
+            wts = np.concatenate(((cnt[one] if w is None else hw[one]).astype(_F8), dw))
         o = np.argsort(keys)  # distinct keys: cells are disjoint key ranges
         return key_values(keys[o]), None, wts[o], total
     ends = [int(occ[0]), int(occ[-1])]  # the map is monotone: the extremes' cells
@@ -742,7 +767,7 @@ def _direct(x, w, capacity, stats=None):
         ends = [c for c in ends if c != heavy]
     # the cells of the minimum and maximum join the first refinement, to weigh those values
     par = _sorted_unique(np.concatenate((pos, np.array(ends, np.int64))))
-    pidx = np.full(m, -1, np.int64)
+    pidx = np.full(m, -1, np.int32)
     pidx[par] = np.arange(par.shape[0])
     t_par = pidx[pos]
     par_c, par_h = ex[par], hw[par]
@@ -765,7 +790,8 @@ def _direct(x, w, capacity, stats=None):
         rows = sel_rows[:_K.select(cells, (pidx >= 0).view(np.uint8), sel_rows)]
     else:
         rows = np.flatnonzero(np.take(pidx >= 0, cells, out=_scratch("flags", n, bool), mode="clip"))
-    first_mn, first_mx = first_mn[par], first_mx[par]
+    if first_mn is not None:
+        first_mn, first_mx = first_mn[par], first_mx[par]
     rp = pidx[cells[rows]]
     has_t = np.zeros(par.shape[0], bool)
     has_t[t_par] = True
@@ -799,7 +825,7 @@ def _direct(x, w, capacity, stats=None):
             dpar = sorted_par[starts]
             _answer_targets(dk, dw, dpar, par_c, npar, d, t_idx, t_par, res_k, res_lo, res_w)
             break
-        if first_mn is not None:  # the compiled first level measured the first parents
+        if first_mn is not None:  # the first level measured the first parents
             pmn, pmx, first_mn = first_mn, first_mx, None
         else:
             pmn = np.full(npar, _U64_MAX, np.uint64)
@@ -882,10 +908,12 @@ def _refine(x, w, cells, pidx, cnt_par, nrows):
     cells (``pidx[cell] >= 0``), in key order: the compiled kernel, or numpy
     with the same order of additions (ties in row order, np.bincount)."""
     if _K is not None and x.flags.c_contiguous and (w is None or w.flags.c_contiguous):
-        dk = np.empty(nrows, np.uint64)
-        dw = np.empty(nrows, _F8)
-        dpar = np.empty(nrows, np.int64)
-        g = _K.refine(x, w, cells, pidx, cnt_par, dk, dw, dpar)
+        # scratch: every caller copies what it keeps of these
+        dk = _scratch("refine_k", nrows, np.uint64)
+        dw = _scratch("refine_w", nrows, _F8)
+        dpar = _scratch("refine_p", nrows, np.int64)
+        work = _scratch("refine_work", 8 * (cnt_par.shape[0] + 2 + 5 * nrows + 1), np.uint8)
+        g = _K.refine(x, w, cells, pidx, cnt_par, dk, dw, dpar, work)
         return dk[:g], dw[:g], dpar[:g]
     rows = np.flatnonzero(np.take(pidx >= 0, cells, mode="clip"))
     kr = float_keys(x[rows])
