@@ -158,11 +158,13 @@ get_map(long long emin, PyObject *nco, PyObject *bo, PyObject *ho, cmap_t *mp, P
 /* first_level(x, w, emin, ncell, base, heavy, cells, table[, wide])
 
    The first-level map of summary._first_level and its histograms in one pass.
-   cells (int64 or int32) receives each row's cell, or is None.  Per cell c the table holds the row count
-   (int64) and the weight (float64, added in row order, as np.bincount does;
-   0 when w is None) and, when wide (the default), the smallest and largest
-   key (uint64): 4 words per cell, else 2.  One cell's words share a cache
-   line.  The table is initialised here. */
+   cells (int64 or int32) receives each row's cell, or is None.  When wide
+   (the default) the table holds 4 words per cell c: the row count (int64),
+   the weight (float64, added in row order, as np.bincount does; 0 when w is
+   None), and the smallest and largest key (uint64); one cell's words share a
+   cache line.  Otherwise it holds one word per cell: the weight, or the row
+   count when w is None (a table a quarter the size stays in cache).  The
+   table is initialised here. */
 static PyObject *
 k_first_level(PyObject *self, PyObject *args)
 {
@@ -199,7 +201,7 @@ k_first_level(PyObject *self, PyObject *args)
         goto done;
     got = 6;
     {
-        Py_ssize_t n = xb.len / 8, words = wide ? 4 : 2, m = tb.len / (8 * words);
+        Py_ssize_t n = xb.len / 8, words = wide ? 4 : 1, m = tb.len / (8 * words);
         if ((weighted && wb.len != xb.len) || (with_cells && cb.len / cb.itemsize != n) ||
             tb.len % (8 * words) != 0) {
             PyErr_SetString(PyExc_ValueError, "first_level: array lengths do not agree");
@@ -218,9 +220,9 @@ k_first_level(PyObject *self, PyObject *args)
         Py_BEGIN_ALLOW_THREADS
         for (Py_ssize_t c = 0; c < m; c++) {
             uint64_t *p = t + c * words;
-            p[0] = 0;
-            p[1] = 0;  /* the bits of +0.0 */
+            p[0] = 0;  /* 0 and the bits of +0.0 */
             if (wide) {
+                p[1] = 0;
                 p[2] = UINT64_MAX;
                 p[3] = 0;
             }
@@ -238,13 +240,16 @@ k_first_level(PyObject *self, PyObject *args)
                 cells32[i] = (int32_t)c;                                        \
             else if (cells)                                                     \
                 cells[i] = c;                                                   \
-            uint64_t *p = t + c * (WIDE ? 4 : 2);                               \
-            p[0] += 1;                                                          \
+            uint64_t *p = t + c * (WIDE ? 4 : 1);                               \
+            if (WIDE)                                                           \
+                p[0] += 1;                                                      \
             if (WEIGHTED) {                                                     \
                 double s;                                                       \
-                memcpy(&s, p + 1, 8);                                           \
+                memcpy(&s, p + WIDE, 8);                                        \
                 s += w[i];                                                      \
-                memcpy(p + 1, &s, 8);                                           \
+                memcpy(p + WIDE, &s, 8);                                        \
+            } else if (!WIDE) {                                                 \
+                p[0] += 1;                                                      \
             }                                                                   \
             if (WIDE) {                                                         \
                 uint64_t k = float_key(v);                                      \
@@ -391,26 +396,29 @@ sort_pairs(uint64_t *k, double *w, uint64_t *tk, double *tw, Py_ssize_t n)
     }
 }
 
-/* refine(x, w, cells, pidx, cntpar, keys, weights, parents) -> groups
+/* refine(x, w, cells, pidx, rows, npar, keys, weights, parents[, work]) -> groups
 
-   The rows of the flagged first-level cells (cells: each row's cell, int64
-   or int32; pidx, int32: pidx[cell] >= 0 is the cell's parent index; parents
-   are in cell order, cntpar their row counts), sorted by key with ties in
-   row order, grouped into distinct keys: keys, weight sums (0.0 plus each
-   row's weight in that order, as np.bincount adds; 1.0 per row when w is
-   None) and parent of each group go to the front of the three outputs (each
-   at least sum(cntpar) long).  Returns the group count.  The numpy route
-   (summary._refine) computes the same numbers.  work, if given, is a
-   writable byte buffer used as working memory when it holds at least
-   8 * (npar + 2 + 5 * sum(cntpar) + 1) bytes. */
+   The given rows (int64, in row order; each in a flagged first-level cell:
+   cells holds each row's cell, int64 or int32, and pidx, int32, maps a cell
+   to its parent index in [0, npar) or -1; parents are in cell order), sorted
+   by key with ties in row order, grouped into distinct keys: keys, weight
+   sums (0.0 plus each row's weight in that order, as np.bincount adds; 1.0
+   per row when w is None) and parent of each group go to the front of the
+   three outputs (each at least len(rows) long).  Returns the group count.
+   The numpy route (summary._refine) computes the same numbers.  work, if
+   given, is a writable byte buffer used as working memory when it holds at
+   least 8 * (npar + 1 + 2 * (2 * len(rows) + 1)) bytes (a reused buffer saves
+   the page faults of fresh memory on every call). */
 static PyObject *
 k_refine(PyObject *self, PyObject *args)
 {
-    PyObject *xo, *wo, *co, *po, *cpo, *ko, *wout, *paro, *worko = Py_None;
-    if (!PyArg_ParseTuple(args, "OOOOOOOO|O", &xo, &wo, &co, &po, &cpo, &ko, &wout, &paro, &worko))
+    PyObject *xo, *wo, *co, *po, *ro, *ko, *wout, *paro, *worko = Py_None;
+    Py_ssize_t npar;
+    if (!PyArg_ParseTuple(args, "OOOOOnOOO|O", &xo, &wo, &co, &po, &ro, &npar, &ko, &wout, &paro,
+                          &worko))
         return NULL;
     int weighted = wo != Py_None;
-    Py_buffer xb, wb, cb, pb, cpb, kb, wob, parb, workb;
+    Py_buffer xb, wb, cb, pb, rb, kb, wob, parb, workb;
     int got = 0, have_work = 0;
     PyObject *res = NULL;
     if (get_buf(xo, &xb, 8, 0, "x") < 0)
@@ -429,7 +437,7 @@ k_refine(PyObject *self, PyObject *args)
     if (get_buf(po, &pb, 4, 0, "pidx") < 0)
         goto done;
     got = 4;
-    if (get_buf(cpo, &cpb, 8, 0, "cntpar") < 0)
+    if (get_buf(ro, &rb, 8, 0, "rows") < 0)
         goto done;
     got = 5;
     if (get_buf(ko, &kb, 8, 1, "keys") < 0)
@@ -447,13 +455,9 @@ k_refine(PyObject *self, PyObject *args)
         have_work = 1;
     }
     {
-        Py_ssize_t n = xb.len / 8, m = pb.len / 4, npar = cpb.len / 8;
-        const int64_t *cntpar = (const int64_t *)cpb.buf;
-        Py_ssize_t total = 0;
-        for (Py_ssize_t p = 0; p < npar; p++)
-            total += cntpar[p];
+        Py_ssize_t n = xb.len / 8, m = pb.len / 4, total = rb.len / 8;
         if ((weighted && wb.len != xb.len) || cb.len / cb.itemsize != n || kb.len / 8 < total ||
-            wob.len / 8 < total || parb.len / 8 < total) {
+            wob.len / 8 < total || parb.len / 8 < total || npar < 0) {
             PyErr_SetString(PyExc_ValueError, "refine: array lengths do not agree");
             goto done;
         }
@@ -462,80 +466,63 @@ k_refine(PyObject *self, PyObject *args)
         const int64_t *c64 = cb.itemsize == 8 ? (const int64_t *)cb.buf : NULL;
         const int32_t *c32 = cb.itemsize == 4 ? (const int32_t *)cb.buf : NULL;
         const int32_t *pidx = (const int32_t *)pb.buf;
+        const int64_t *rows = (const int64_t *)rb.buf;
         uint64_t *gk = (uint64_t *)kb.buf;
         double *gw = (double *)wob.buf;
         int64_t *gp = (int64_t *)parb.buf;
         Py_ssize_t groups = 0;
         int bad = 0;
-        /* working memory: the caller's (a reused buffer saves the page faults of
-           fresh memory on every call) when it is large enough, else our own */
-        size_t need = (size_t)(npar + 1 + total + 1 + 2 * (2 * total + 1)) * 8;
+        size_t need = (size_t)(npar + 1 + 2 * (2 * total + 1)) * 8;
         int own = !(have_work && (size_t)workb.len >= need);
         Py_BEGIN_ALLOW_THREADS
         char *mem = own ? (char *)PyMem_RawMalloc(need) : (char *)workb.buf;
         Py_ssize_t *pos = (Py_ssize_t *)mem;
-        Py_ssize_t *rows = pos + (npar + 1);
-        uint64_t *bk = (uint64_t *)(rows + (total + 1));
+        uint64_t *bk = (uint64_t *)(pos + (npar + 1));
         double *bw = (double *)(bk + (2 * total + 1));
         if (mem == NULL) {
             bad = 2;
         } else {
-            Py_ssize_t acc = 0;
-            for (Py_ssize_t p = 0; p < npar; p++) {
-                pos[p] = acc;
-                acc += cntpar[p];
-            }
-            for (Py_ssize_t c = 0; c < m; c++)
-                if (pidx[c] < -1 || pidx[c] >= npar)
-                    bad = 1;
-            /* The flagged rows, in order, without a branch per row (a few percent
-               of the rows are flagged: branching on each and loading its value
-               there stalls on nearly every one). */
-            Py_ssize_t k = 0;
-            for (Py_ssize_t i = 0; i < n && !bad; i++) {
-                int64_t c = c32 ? (int64_t)c32[i] : c64[i];
-                if ((uint64_t)c >= (uint64_t)m || k > total) {
+            /* rows per parent, then each parent's first slot */
+            memset(pos, 0, (size_t)(npar + 1) * sizeof(Py_ssize_t));
+            for (Py_ssize_t r = 0; r < total; r++) {
+                int64_t i = rows[r];
+                if (i < 0 || i >= n) {
                     bad = 1;
                     break;
                 }
-                rows[k] = i;
-                k += pidx[c] >= 0;
+                int64_t c = c32 ? (int64_t)c32[i] : c64[i];
+                if (c < 0 || c >= m || pidx[c] < 0 || pidx[c] >= npar) {
+                    bad = 1;
+                    break;
+                }
+                pos[pidx[c] + 1]++;
             }
-            if (k != total)
-                bad = 1;
-            for (Py_ssize_t r = 0; r < k && !bad; r++) {
-                Py_ssize_t i = rows[r];
+            for (Py_ssize_t p = 0; p < npar && !bad; p++)
+                pos[p + 1] += pos[p];
+            for (Py_ssize_t r = 0; r < total && !bad; r++) {
+                int64_t i = rows[r];
                 int64_t c = c32 ? (int64_t)c32[i] : c64[i];
                 Py_ssize_t j = pos[pidx[c]]++;
-                if (j >= total) {
-                    bad = 1;
-                    break;
-                }
                 bk[j] = float_key(x[i]);
                 bw[j] = weighted ? w[i] : 1.0;
             }
-            if (!bad) {
-                Py_ssize_t start = 0;
-                for (Py_ssize_t p = 0; p < npar; p++) {
-                    Py_ssize_t end = start + cntpar[p];
-                    if (pos[p] != end) {
-                        bad = 1;
-                        break;
+            /* pos[p] is now the end of parent p's rows */
+            Py_ssize_t start = 0;
+            for (Py_ssize_t p = 0; p < npar && !bad; p++) {
+                Py_ssize_t end = pos[p];
+                Py_ssize_t len = end - start;
+                if (len > 1)
+                    sort_pairs(bk + start, bw + start, bk + total, bw + total, len);
+                for (Py_ssize_t j = start; j < end; j++) {
+                    if (j == start || bk[j] != bk[j - 1]) {
+                        gk[groups] = bk[j];
+                        gw[groups] = 0.0;
+                        gp[groups] = p;
+                        groups++;
                     }
-                    Py_ssize_t len = end - start;
-                    if (len > 1)
-                        sort_pairs(bk + start, bw + start, bk + total, bw + total, len);
-                    for (Py_ssize_t j = start; j < end; j++) {
-                        if (j == start || bk[j] != bk[j - 1]) {
-                            gk[groups] = bk[j];
-                            gw[groups] = 0.0;
-                            gp[groups] = p;
-                            groups++;
-                        }
-                        gw[groups - 1] += bw[j];
-                    }
-                    start = end;
+                    gw[groups - 1] += bw[j];
                 }
+                start = end;
             }
         }
         if (own)
@@ -546,7 +533,7 @@ k_refine(PyObject *self, PyObject *args)
             goto done;
         }
         if (bad) {
-            PyErr_SetString(PyExc_ValueError, "refine: cells, pidx and cntpar do not agree");
+            PyErr_SetString(PyExc_ValueError, "refine: rows, cells and pidx do not agree");
             goto done;
         }
         res = PyLong_FromSsize_t(groups);
@@ -556,7 +543,7 @@ done:
     if (got >= 8) PyBuffer_Release(&parb);
     if (got >= 7) PyBuffer_Release(&wob);
     if (got >= 6) PyBuffer_Release(&kb);
-    if (got >= 5) PyBuffer_Release(&cpb);
+    if (got >= 5) PyBuffer_Release(&rb);
     if (got >= 4) PyBuffer_Release(&pb);
     if (got >= 3) PyBuffer_Release(&cb);
     if (got >= 2 && weighted) PyBuffer_Release(&wb);
@@ -1090,7 +1077,7 @@ static PyMethodDef methods[] = {
      "first_level(x, w, emin, ncell, base, heavy, cells, table[, wide])"},
     {"select", k_select, METH_VARARGS, "select(cells, flags, rows) -> count"},
     {"refine", k_refine, METH_VARARGS,
-     "refine(x, w, cells, pidx, cntpar, keys, weights, parents[, work]) -> groups"},
+     "refine(x, w, cells, pidx, rows, npar, keys, weights, parents[, work]) -> groups"},
     {"merge_bounds", k_merge_bounds, METH_VARARGS,
      "merge_bounds(x, rmin, rmax, w, offsets, totals, z, lo, hi, wz) -> count"},
     {"bitpack", k_bitpack, METH_VARARGS, "bitpack(v, block, out) -> bytes written"},

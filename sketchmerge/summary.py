@@ -149,7 +149,6 @@ _SAMPLE = 2048          # strided sample that shapes the first-level map
 _FINISH_ROWS = 8192     # rows left in refined cells: sort them instead of bucketing again
 _SORT_DIV = 4           # targets' cells hold at most 1/_SORT_DIV of the rows: sort them at once
 _FIRST_BITS = 16        # at most 2**16 first-level cells
-_WIDE_REPEATS = 8       # record the cells' key ranges when the sample has this many repeats
 _DIRECT_ROWS = 24       # direct pruned construction from this many rows per unit of capacity
 _SCRATCH_MAX = 1 << 20  # scratch buffers up to this many elements are kept per thread
 EXACT_METHODS = ("auto", "sort", "count", "radix", "buckets")
@@ -489,7 +488,7 @@ def exact_entries(x: np.ndarray, w: np.ndarray | None, method: str = "auto"):
     return xu, (np.ones(xu.shape[0], _F8) if wu is None else wu.astype(_F8, copy=False))
 
 
-def _first_map(x, w, n, xmin, xmax):
+def _first_map(x, w, n, xmin, xmax, capacity=2048):
     """Map every row to a first-level cell by a monotone function of its value.
 
     The map follows the data's binades (the sign-and-exponent field of the
@@ -506,8 +505,8 @@ def _first_map(x, w, n, xmin, xmax):
     Returns the map's parameters ``(emin, ncell, base, size, heavy, wide)``:
     per binade from ``emin`` its cell count and first cell, the cell count
     before the point mass's split, the point mass's key (or None), and whether
-    the first level should also record each cell's key range (the sample has
-    repeats, so cells may hold a single value).
+    the first level should also record each cell's key range (the sample's
+    repeats suggest at most about ``capacity + 1`` distinct values).
     :func:`_first_level` applies the map with numpy, the compiled kernel in
     one pass.
     """
@@ -519,13 +518,7 @@ def _first_map(x, w, n, xmin, xmax):
     heavy = None
     sorted_k = np.sort(sk)
     starts = _run_starts(sorted_k)
-    # Few repeats in the sample: far more distinct values than cells, so no cell
-    # holds a single value and the cells' key ranges are not worth recording.
-    # (d distinct values, equally frequent, give about s^2 / 2d repeated pairs in a
-    # sample of s; at most 2^16 + 2 cells and s = 2048 give 32 or more, and
-    # unequal frequencies give more.)
-    repeats = 0 if starts is None else sorted_k.shape[0] - starts.shape[0]
-    wide = repeats >= _WIDE_REPEATS
+    repeats, s_eff = 0 if starts is None else sorted_k.shape[0] - starts.shape[0], sorted_k.shape[0]
     if starts is not None and starts.shape[0] > 1:
         runs = _run_lengths(starts, sorted_k.shape[0])
         top = int(np.argmax(runs))
@@ -534,6 +527,17 @@ def _first_map(x, w, n, xmin, xmax):
             keep = sk != heavy
             sk = sk[keep]
             sw = None if sw is None else sw[keep]
+            # the point mass gets a cell of its own: judge the other values alone
+            repeats -= int(runs[top]) - 1
+            s_eff -= int(runs[top])
+    # Record the cells' key ranges (wide) only when the values may be few enough for
+    # an exact summary: d equally frequent values show s - d (1 - exp(-s / d))
+    # repeats in a sample of s, unequal frequencies more; wide from half of what
+    # d = capacity + 1 would show.  Otherwise no decision needs the ranges (the
+    # pruned entries do not depend on them), and a table of one word per cell
+    # stays in cache.
+    d = float(capacity + 1)
+    wide = s_eff > 0 and repeats >= 0.5 * (s_eff - d * -np.expm1(-s_eff / d))
     emin, emax = (int(e) >> 52 for e in float_keys(np.array([xmin, xmax])))
     se = np.right_shift(sk, np.uint64(52)).view(np.int64)
     share = np.bincount(se, weights=sw, minlength=emax + 1)[emin:emax + 1]
@@ -582,30 +586,35 @@ def _first_cells(x, n, emin, ncell, base, size, heavy):
 
 
 def _first_level(x, w, n, emin, ncell, base, size, heavy_key, wide=True):
-    """The first level: every row's cell and, per cell, the row count, the weight
-    (summed in row order) and, when ``wide``, the smallest and largest key.
+    """The first level: every row's cell and, per cell, the weight (summed in
+    row order) and, when ``wide``, the row count and the smallest and largest key.
 
-    Returns ``(cells, m, heavy_cell, cnt, hw, kmin, kmax)``; ``kmin`` and
-    ``kmax`` are None unless ``wide``.  ``cells`` is a scratch buffer (int32
-    from the compiled kernel, which does it all in one pass, int64 from
-    numpy); the numpy route computes the same numbers (np.bincount also sums
-    in row order).
+    Returns ``(cells, m, heavy_cell, cnt, hw, kmin, kmax)``.  ``kmin`` and
+    ``kmax`` are None unless ``wide``; ``cnt`` is None when neither ``wide``
+    nor unweighted (``hw`` is then the only histogram: one word per cell keeps
+    the table in cache).  ``cells`` is a scratch buffer (int32 from the
+    compiled kernel, which does it all in one pass, int64 from numpy); the
+    numpy route computes the same numbers (np.bincount also sums in row order).
     """
     if _K is not None and x.flags.c_contiguous and (w is None or w.flags.c_contiguous):
         m = size + 2 if heavy_key is not None else size
         heavy = _heavy_cell(heavy_key, emin, ncell, base) if heavy_key is not None else -1
-        words = 4 if wide else 2
-        table = _scratch("table", words * m, np.uint64).reshape(m, words)  # a cell's count, weight[, key range]
+        words = 4 if wide else 1
+        table = _scratch("table", words * m, np.uint64).reshape(m, words)
         cells = _scratch("cells32", n, np.int32)  # half the bytes of int64: the refine pass reads them
         _K.first_level(x, w, emin, ncell, base, _heavy_arg(heavy_key, heavy), cells,
                        table.reshape(-1), wide)
         # strided views of the scratch table; every later use copies what it keeps
-        cnt = table[:, 0].view(np.int64)
-        kmin, kmax = (table[:, 2], table[:, 3]) if wide else (None, None)
-        hw = None if w is None else table[:, 1].view(_F8)
+        if wide:  # a cell's count, weight and key range
+            cnt, kmin, kmax = table[:, 0].view(np.int64), table[:, 2], table[:, 3]
+            hw = None if w is None else table[:, 1].view(_F8)
+        else:  # a cell's weight, or its count
+            kmin = kmax = None
+            cnt = table[:, 0].view(np.int64) if w is None else None
+            hw = None if w is None else table[:, 0].view(_F8)
     else:
         cells, m, heavy = _first_cells(x, n, emin, ncell, base, size, heavy_key)
-        cnt = np.bincount(cells, minlength=m)
+        cnt = np.bincount(cells, minlength=m) if wide or w is None else None
         hw = None if w is None else np.bincount(cells, weights=w, minlength=m)
         kmin = kmax = None
         if wide:
@@ -617,6 +626,27 @@ def _first_level(x, w, n, emin, ncell, base, size, heavy_key, wide=True):
     if hw is None:
         hw = cnt.astype(_F8)
     return cells, m, heavy, cnt, hw, kmin, kmax
+
+
+def _cells_at(v, emin, ncell, base, heavy_key, heavy):
+    """First-level cells of a few values ``v`` (the map of :func:`_first_cells`,
+    without its scratch buffers)."""
+    k = float_keys(v)
+    e = np.clip(np.right_shift(k, np.uint64(52)).astype(np.int64) - emin, 0, ncell.shape[0] - 1)
+    c = (np.right_shift(k, np.uint64(36)) & np.uint64(0xFFFF)).astype(np.int64)
+    c = ((c * ncell[e]) >> 16) + base[e]
+    if heavy_key is not None:
+        hv, hcell = float(key_values(heavy_key)), heavy - 1
+        c = c + np.where(c > hcell, 2, np.where(c == hcell, (v >= hv).astype(np.int64) + (v > hv), 0))
+    return c
+
+
+def _select(cells, pidx, n):
+    """The rows (ascending) whose cell is flagged (``pidx[cell] >= 0``); may be scratch."""
+    if _K is not None:
+        sel_rows = _scratch("select", n, np.int64)
+        return sel_rows[:_K.select(cells, (pidx >= 0).view(np.uint8), sel_rows)]
+    return np.flatnonzero(np.take(pidx >= 0, cells, out=_scratch("flags", n, bool), mode="clip"))
 
 
 def _heavy_arg(heavy_key, heavy):
@@ -717,33 +747,34 @@ def _direct(x, w, capacity, stats=None):
     if not total > 0.0:
         return None
     kmin, kmax = float_keys(np.array([xmin, xmax]))
-    emin, ncell, base, size, heavy_key, wide = _first_map(x, w, n, xmin, xmax)
+    emin, ncell, base, size, heavy_key, wide = _first_map(x, w, n, xmin, xmax, b)
     cells, m, heavy, cnt, hw, first_mn, first_mx = _first_level(x, w, n, emin, ncell, base, size,
                                                                 heavy_key, wide)
-    occ = np.flatnonzero(cnt)
+    # occupied cells (not wide and weighted: those of positive weight)
+    occ = np.flatnonzero(hw if cnt is None else cnt)
     # without key ranges (not wide) every occupied cell counts as holding several values
     multi = occ if first_mn is None else occ[first_mn[occ] != first_mx[occ]]
-    if multi.shape[0] == 0:
+    if first_mn is not None and multi.shape[0] == 0:
         # every occupied cell holds one value: the histogram is the exact summary
         return key_values(first_mn[occ]), None, (cnt[occ] if w is None else hw[occ]), total
     if occ.shape[0] <= b + 1:
         # few occupied cells: few distinct values, and the summary may stay exact. Sort the
         # rows of the cells holding several values (when they are few) for the exact entries.
+        if first_mn is None:
+            return None  # not measured: the exact methods
         nmulti = int(cnt[multi].sum())
         if nmulti * _SORT_DIV > n and nmulti > _FINISH_ROWS:
             return None  # the exact methods
         pidx = np.full(m, -1, np.int32)
         pidx[multi] = np.arange(multi.shape[0])
-        dk, dw, _ = _refine(x, w, cells, pidx, cnt[multi], nmulti)
-        if first_mn is None:
-            keys, wts = dk.copy(), dw.copy()
-        else:
-            one = occ[first_mn[occ] == first_mx[occ]]
-            keys = np.concatenate((first_mn[one], dk))
-            wts = np.concatenate(((cnt[one] if w is None else hw[one]).astype(_F8), dw))
+        dk, dw, _ = _refine(x, w, cells, pidx, _select(cells, pidx, n), multi.shape[0])
+        one = occ[first_mn[occ] == first_mx[occ]]
+        keys = np.concatenate((first_mn[one], dk))
+        wts = np.concatenate(((cnt[one] if w is None else hw[one]).astype(_F8), dw))
         o = np.argsort(keys)  # distinct keys: cells are disjoint key ranges
         return key_values(keys[o]), None, wts[o], total
-    ends = [int(occ[0]), int(occ[-1])]  # the map is monotone: the extremes' cells
+    # the extremes' cells (by count, the first and last occupied: the map is monotone)
+    ends = [int(c) for c in _cells_at(np.array([xmin, xmax]), emin, ncell, base, heavy_key, heavy)]
     # exclusive cumulative weight of the cells (integer counts sum faster and exactly)
     ex = np.empty(m, _F8)
     ex[0] = 0.0
@@ -772,11 +803,11 @@ def _direct(x, w, capacity, stats=None):
     t_par = pidx[pos]
     par_c, par_h = ex[par], hw[par]
     npar = par.shape[0]
-    cnt_par = cnt[par]
-    nrows = int(cnt_par.sum())
+    rows = _select(cells, pidx, n)
+    nrows = rows.shape[0]
     if nrows * _SORT_DIV <= n or nrows <= _FINISH_ROWS:
         # usual case: sort the rows of those cells once and read the targets off
-        dk, dw, dpar = _refine(x, w, cells, pidx, cnt_par, nrows)
+        dk, dw, dpar = _refine(x, w, cells, pidx, rows, npar)
         if wmin is None:  # the extremes' cells are the first and last parents
             wmin = float(dw[0])
         if wmax is None:
@@ -785,11 +816,6 @@ def _direct(x, w, capacity, stats=None):
         return _entries(kmin, kmax, res_k, res_lo, res_w, wmin, wmax, total)
     # the map left many rows in the targets' cells (values packed into a few
     # mantissa steps): refine those cells by finer histograms, level by level
-    if _K is not None:
-        sel_rows = _scratch("select", n, np.int64)
-        rows = sel_rows[:_K.select(cells, (pidx >= 0).view(np.uint8), sel_rows)]
-    else:
-        rows = np.flatnonzero(np.take(pidx >= 0, cells, out=_scratch("flags", n, bool), mode="clip"))
     if first_mn is not None:
         first_mn, first_mx = first_mn[par], first_mx[par]
     rp = pidx[cells[rows]]
@@ -903,19 +929,20 @@ def _entries(kmin, kmax, res_k, res_lo, res_w, wmin, wmax, total):
     return key_values(keys[first_i]), lo[first_i], ww[first_i], total
 
 
-def _refine(x, w, cells, pidx, cnt_par, nrows):
-    """Distinct keys, weight sums and parent index of the rows in the flagged
-    cells (``pidx[cell] >= 0``), in key order: the compiled kernel, or numpy
-    with the same order of additions (ties in row order, np.bincount)."""
+def _refine(x, w, cells, pidx, rows, npar):
+    """Distinct keys, weight sums and parent index of the given rows (ascending,
+    each in a flagged cell: ``pidx[cell]`` is its parent, ``0 <= pidx < npar``),
+    in key order: the compiled kernel, or numpy with the same order of
+    additions (ties in row order, np.bincount).  The results may be scratch."""
     if _K is not None and x.flags.c_contiguous and (w is None or w.flags.c_contiguous):
-        # scratch: every caller copies what it keeps of these
-        dk = _scratch("refine_k", nrows, np.uint64)
-        dw = _scratch("refine_w", nrows, _F8)
-        dpar = _scratch("refine_p", nrows, np.int64)
-        work = _scratch("refine_work", 8 * (cnt_par.shape[0] + 2 + 5 * nrows + 1), np.uint8)
-        g = _K.refine(x, w, cells, pidx, cnt_par, dk, dw, dpar, work)
+        k = rows.shape[0]
+        dk = _scratch("refine_k", k, np.uint64)
+        dw = _scratch("refine_w", k, _F8)
+        dpar = _scratch("refine_p", k, np.int64)
+        work = _scratch("refine_work", 8 * (npar + 1 + 2 * (2 * k + 1)), np.uint8)
+        g = _K.refine(x, w, cells, pidx, np.ascontiguousarray(rows, np.int64), npar, dk, dw, dpar,
+                      work)
         return dk[:g], dw[:g], dpar[:g]
-    rows = np.flatnonzero(np.take(pidx >= 0, cells, mode="clip"))
     kr = float_keys(x[rows])
     o = np.argsort(kr, kind="stable")  # parents are disjoint key ranges in order
     ks = kr[o]
@@ -925,7 +952,7 @@ def _refine(x, w, cells, pidx, cnt_par, nrows):
     starts = np.flatnonzero(change)
     gid = np.cumsum(change) - 1
     dw = np.bincount(gid, weights=None if w is None else w[rows[o]], minlength=starts.shape[0])
-    return ks[starts], dw.astype(_F8, copy=False), pidx[cells[rows[o[starts]]]]
+    return ks[starts], dw.astype(_F8, copy=False), pidx[cells[rows[o[starts]]]].astype(np.int64)
 
 
 def _extended(x, rmin, rmax, w, total, z):

@@ -121,18 +121,18 @@ def test_kernels_refuse_mismatched_arrays():
                             np.empty(10, np.int64), np.empty(4, np.uint64))
     with pytest.raises(ValueError):
         core._K.scan(np.arange(10, dtype=np.int32))  # 4-byte items
-    with pytest.raises(ValueError, match="agree"):  # cntpar says fewer rows than flagged
-        core._K.refine(x, None, np.zeros(10, np.int64), np.zeros(1, np.int32), np.array([3]),
-                       np.empty(3, np.uint64), np.empty(3), np.empty(3, np.int64))
-    with pytest.raises(ValueError, match="agree"):  # cntpar says more rows than flagged
-        core._K.refine(x, None, np.zeros(10, np.int32), np.zeros(1, np.int32), np.array([11]),
-                       np.empty(11, np.uint64), np.empty(11), np.empty(11, np.int64))
-    with pytest.raises(ValueError, match="agree"):  # a parent index beyond cntpar
-        core._K.refine(x, None, np.zeros(10, np.int32), np.ones(1, np.int32), np.array([10]),
-                       np.empty(10, np.uint64), np.empty(10), np.empty(10, np.int64))
+    c = np.zeros(10, np.int32)
+    out = (np.empty(3, np.uint64), np.empty(3), np.empty(3, np.int64))
+    with pytest.raises(ValueError, match="agree"):  # a row in an unflagged cell
+        core._K.refine(x, None, c, np.full(1, -1, np.int32), np.array([0, 1, 2]), 1, *out)
+    with pytest.raises(ValueError, match="agree"):  # a parent index beyond npar
+        core._K.refine(x, None, c, np.ones(1, np.int32), np.array([0, 1, 2]), 1, *out)
+    with pytest.raises(ValueError, match="agree"):  # a row beyond x
+        core._K.refine(x, None, c, np.zeros(1, np.int32), np.array([0, 1, 10]), 1, *out)
+    with pytest.raises(ValueError, match="lengths"):  # outputs shorter than the rows
+        core._K.refine(x, None, c, np.zeros(1, np.int32), np.arange(4), 1, *out)
     with pytest.raises(ValueError, match="4- or 8-byte"):
-        core._K.refine(x, None, np.zeros(10, np.int16), np.zeros(1, np.int32), np.array([10]),
-                       np.empty(10, np.uint64), np.empty(10), np.empty(10, np.int64))
+        core._K.refine(x, None, c.astype(np.int16), np.zeros(1, np.int32), np.arange(3), 1, *out)
 
 
 def test_kernels_run_in_threads_without_the_gil():
