@@ -116,6 +116,7 @@ def _row_weights(arrays: dict, spec: BuildSpec, where: str, rows: int) -> np.nda
                                  f"{int(np.argmax(bad))} (use --missing-weight zero to give such rows no weight)")
             w = np.where(bad, 0.0, w)
         w = check_weights(w, rows, f"{where}: weight column {spec.weight_column!r}")
+    checked = w
     if spec.hessian and spec.hessian != "squared":
         p = arrays[spec.prediction_column]
         bad = np.isnan(p)
@@ -128,6 +129,8 @@ def _row_weights(arrays: dict, spec: BuildSpec, where: str, rows: int) -> np.nda
         if bad.any():
             h = np.where(bad, 0.0, h)
         w = h if w is None else w * h
+    if w is not None and w is not checked:  # once per unit: the features' sketches trust it
+        w = check_weights(w, rows, f"{where}: row weights")
     return w
 
 
@@ -158,12 +161,12 @@ def _with_dtype(s: Summary, dtype: str) -> Summary:
 
 
 def _leaf(x: np.ndarray, w, capacity: int) -> Summary:
-    try:
-        return Summary.from_values(x, w, capacity=capacity)
-    except TypeError as e:  # a core without direct pruned construction
-        if "capacity" not in str(e):
-            raise
-        return Summary.from_values(x, w).prune(capacity)
+    """``Summary.from_values(x, w, capacity=capacity)`` for weights :func:`_row_weights`
+    has validated already (once per unit rather than once per feature)."""
+    from .summary import _check_capacity, check_values
+
+    raw = np.asarray(x)
+    return Summary._from_checked(check_values(raw), w, raw.dtype.name, _check_capacity(capacity))
 
 
 _POOL = None
@@ -261,7 +264,7 @@ def _sketch_columns(unit, spec: BuildSpec, where: str) -> tuple[dict, int]:
 
     side = [c for c in spec.columns_to_read() if c not in spec.features]
     cols = iter_unit(unit, side + list(spec.features), protocol=spec.protocol,
-                     storage_options=spec.storage_options or None)
+                     storage_options=spec.storage_options or None, writeable=False)
     pending = []
     sums = {}
     try:

@@ -1594,7 +1594,8 @@ def select_features(dataset: Dataset, *, columns=None, exclude=None,
 
 # --------------------------------------------------------------------------- read_unit
 
-def _float64(col: pa.ChunkedArray | pa.Array, name: str, where: str) -> tuple[np.ndarray, str]:
+def _float64(col: pa.ChunkedArray | pa.Array, name: str, where: str,
+             writeable: bool = True) -> tuple[np.ndarray, str]:
     t = col.type
     tname = _type_name(t)
     n = len(col)
@@ -1615,17 +1616,24 @@ def _float64(col: pa.ChunkedArray | pa.Array, name: str, where: str) -> tuple[np
     else:
         raise InputError(f"{where}, column {name!r}: expected a numeric or boolean column, "
                          f"got {tname}")
-    return _double_to_numpy(col), tname
+    return _double_to_numpy(col, writeable), tname
 
 
-def _double_to_numpy(col: pa.ChunkedArray | pa.Array) -> np.ndarray:
+def _double_to_numpy(col: pa.ChunkedArray | pa.Array, writeable: bool = True) -> np.ndarray:
     """A float64 Arrow column as one fresh, writeable numpy array, nulls as NaN.
 
     Straight from the value buffers, one copy per chunk: pyarrow's ``to_numpy`` (and
     ``fill_null`` with a NaN scalar) import pandas, which costs a fresh worker process
     about half a second and some 50 MB; the read path has no other use for pandas.
+    With ``writeable=False`` a column of one chunk without nulls comes back as a
+    read-only view of Arrow's buffer instead (no copy, no fresh pages to fault in).
     """
     chunks = col.chunks if isinstance(col, pa.ChunkedArray) else [col]
+    if not writeable:
+        live = [c for c in chunks if len(c)]
+        if len(live) == 1 and not live[0].null_count:
+            c = live[0]
+            return np.frombuffer(c.buffers()[1], dtype=np.float64, count=len(c), offset=c.offset * 8)
     out = np.empty(len(col), dtype=np.float64)
     pos = 0
     for c in chunks:   # one chunk per row group or record batch, not per row
@@ -1828,7 +1836,8 @@ def read_unit(unit: Unit, columns: list[str], *, protocol: str,
 
 
 def iter_unit(unit: Unit, columns: list[str], *, protocol: str,
-              storage_options: dict | None = None, verify: bool = True):
+              storage_options: dict | None = None, verify: bool = True,
+              writeable: bool = True):
     """:func:`read_unit` one column at a time, for a consumer that drops each column
     before asking for the next.
 
@@ -1838,6 +1847,8 @@ def iter_unit(unit: Unit, columns: list[str], *, protocol: str,
     consumer and this reader hold one column of the unit between them; CSV and Arrow
     IPC units are read whole first.  Raises what :func:`read_unit` raises, on the first
     ``next`` for what is wrong with the file and later for what is wrong with a column.
+    ``writeable=False`` lets a float64 column without nulls come back as a read-only
+    view of the decoded Arrow buffer (no copy), for a consumer that only reads.
     """
     secrets = _secret_values(storage_options)
     fs = filesystem(protocol, storage_options)
@@ -1887,7 +1898,7 @@ def iter_unit(unit: Unit, columns: list[str], *, protocol: str,
             for c in cols:   # pop as we go: one source column alive at a time
                 if c in raw:
                     col = raw.pop(c)
-                    a, kinds[c] = _float64(col() if callable(col) else col, c, where)
+                    a, kinds[c] = _float64(col() if callable(col) else col, c, where, writeable)
                     del col
                 elif c in arrays:
                     a = arrays.pop(c)
