@@ -287,6 +287,105 @@ done:
     return res;
 }
 
+/* cell_ranks(h, cnt, d, ex, pos) -> occupied
+
+   The first level's rank arithmetic of summary._direct in one pass over the
+   cells.  Exactly one of h (float64 weight per cell) and cnt (int64 count per
+   cell, unweighted data) is given.  ex receives each cell's exclusive
+   cumulative weight (sequential sums, as np.cumsum adds; integer sums for
+   counts) and pos, for each target rank of the non-decreasing d, the cell
+   summary._locate picks: the first cell whose cumulative weight ex + h
+   reaches it (the last cell when none does), moved to the nearest cell of
+   positive weight before it (or else after it) when it has none.  Returns the
+   number of cells of positive weight (or count). */
+static PyObject *
+k_cell_ranks(PyObject *self, PyObject *args)
+{
+    PyObject *ho, *co, *dobj, *exo, *po;
+    if (!PyArg_ParseTuple(args, "OOOOO", &ho, &co, &dobj, &exo, &po))
+        return NULL;
+    if ((ho == Py_None) == (co == Py_None)) {
+        PyErr_SetString(PyExc_TypeError, "cell_ranks: give exactly one of h and cnt");
+        return NULL;
+    }
+    int weighted = ho != Py_None;
+    Py_buffer hb, db, eb, pb;
+    if (get_buf(weighted ? ho : co, &hb, 8, 0, weighted ? "h" : "cnt") < 0)
+        return NULL;
+    if (get_buf(dobj, &db, 8, 0, "d") < 0) {
+        PyBuffer_Release(&hb);
+        return NULL;
+    }
+    if (get_buf(exo, &eb, 8, 1, "ex") < 0) {
+        PyBuffer_Release(&db);
+        PyBuffer_Release(&hb);
+        return NULL;
+    }
+    if (get_buf(po, &pb, 8, 1, "pos") < 0) {
+        PyBuffer_Release(&eb);
+        PyBuffer_Release(&db);
+        PyBuffer_Release(&hb);
+        return NULL;
+    }
+    Py_ssize_t m = hb.len / 8, nd = db.len / 8, occupied = 0;
+    int bad = eb.len != hb.len || pb.len != db.len || m < 1;
+    if (!bad) {
+        const double *h = weighted ? (const double *)hb.buf : NULL;
+        const int64_t *cnt = weighted ? NULL : (const int64_t *)hb.buf;
+        const double *d = (const double *)db.buf;
+        double *ex = (double *)eb.buf;
+        int64_t *pos = (int64_t *)pb.buf;
+        Py_BEGIN_ALLOW_THREADS
+        Py_ssize_t t = 0;
+        double acc = 0.0;
+        int64_t iacc = 0;
+        for (Py_ssize_t c = 0; c < m; c++) {
+            double hc, ce;
+            if (weighted) {
+                hc = h[c];
+                ex[c] = acc;
+                ce = acc + hc;
+                acc = ce;  /* the same addition np.cumsum makes */
+            } else {
+                hc = (double)cnt[c];
+                ex[c] = (double)iacc;
+                ce = (double)iacc + hc;
+                iacc += cnt[c];
+            }
+            occupied += weighted ? hc != 0.0 : cnt[c] != 0;
+            while (t < nd && ce >= d[t])
+                pos[t++] = c;
+        }
+        for (; t < nd; t++)
+            pos[t] = m - 1;
+        for (t = 0; t < nd; t++) {
+            Py_ssize_t c = pos[t];
+            double hc = weighted ? h[c] : (double)cnt[c];
+            if (hc > 0.0)
+                continue;
+            Py_ssize_t q = c;  /* float noise at the end: the nearest weighted cell */
+            while (q >= 0 && !((weighted ? h[q] : (double)cnt[q]) > 0.0))
+                q--;
+            if (q < 0) {
+                q = c;
+                while (q < m - 1 && !((weighted ? h[q] : (double)cnt[q]) > 0.0))
+                    q++;
+            }
+            pos[t] = q;
+        }
+        Py_END_ALLOW_THREADS
+    }
+    PyBuffer_Release(&pb);
+    PyBuffer_Release(&eb);
+    PyBuffer_Release(&db);
+    PyBuffer_Release(&hb);
+    if (bad) {
+        PyErr_SetString(PyExc_ValueError, "cell_ranks: array lengths do not agree");
+        return NULL;
+    }
+    return PyLong_FromSsize_t(occupied);
+}
+
 /* select(cells, flags, rows) -> count: the rows (in order) whose cell is flagged,
    written to the front of rows (np.flatnonzero(flags[cells])); cells int64 or int32. */
 static PyObject *
@@ -1075,6 +1174,7 @@ static PyMethodDef methods[] = {
     {"scan", k_scan, METH_VARARGS, "scan(x) -> (nan_count, vmin, vmax, order)"},
     {"first_level", k_first_level, METH_VARARGS,
      "first_level(x, w, emin, ncell, base, heavy, cells, table[, wide])"},
+    {"cell_ranks", k_cell_ranks, METH_VARARGS, "cell_ranks(h, cnt, d, ex, pos) -> occupied"},
     {"select", k_select, METH_VARARGS, "select(cells, flags, rows) -> count"},
     {"refine", k_refine, METH_VARARGS,
      "refine(x, w, cells, pidx, rows, npar, keys, weights, parents[, work]) -> groups"},

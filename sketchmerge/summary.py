@@ -654,6 +654,32 @@ def _heavy_arg(heavy_key, heavy):
     return None if heavy_key is None else (float(key_values(heavy_key)), heavy - 1)
 
 
+def _cell_ranks_numpy(cnt, hw, w, d):
+    """Each cell's exclusive cumulative weight (integer counts sum faster and exactly)
+    and the cell answering each target rank ``d``."""
+    m = hw.shape[0]
+    ex = np.empty(m, _F8)
+    ex[0] = 0.0
+    ex[1:] = np.cumsum(cnt[:-1]) if w is None else np.cumsum(hw[:-1])
+    pos = _locate(d, ex + hw, hw, np.zeros(d.shape[0], np.int64), np.full(d.shape[0], m, np.int64))
+    return ex, pos
+
+
+def _cell_ranks(cnt, hw, w, d):
+    """:func:`_cell_ranks_numpy` and the number of occupied cells (positive weight, or
+    a positive count unweighted): the compiled kernel in one pass, or numpy."""
+    h = hw if w is not None else None
+    c = cnt if w is None else None
+    arr = h if h is not None else c
+    if _K is not None and arr.flags.c_contiguous:
+        ex = _scratch("cell_ex", arr.shape[0], _F8)
+        pos = np.empty(d.shape[0], np.int64)
+        nocc = _K.cell_ranks(h, c, d, ex, pos)
+        return ex, pos, nocc
+    ex, pos = _cell_ranks_numpy(cnt, hw, w, d)
+    return ex, pos, int(np.count_nonzero(arr))
+
+
 def _locate(dv, cend, h, lo, cnt):
     """Cell answering each target rank ``dv``: the first cell with ``cend >= dv``
     (the exact rule of :meth:`Summary._query_index`) and positive weight,
@@ -750,18 +776,23 @@ def _direct(x, w, capacity, stats=None):
     emin, ncell, base, size, heavy_key, wide = _first_map(x, w, n, xmin, xmax, b)
     cells, m, heavy, cnt, hw, first_mn, first_mx = _first_level(x, w, n, emin, ncell, base, size,
                                                                 heavy_key, wide)
-    # occupied cells (not wide and weighted: those of positive weight)
-    occ = np.flatnonzero(hw if cnt is None else cnt)
-    # without key ranges (not wide) every occupied cell counts as holding several values
-    multi = occ if first_mn is None else occ[first_mn[occ] != first_mx[occ]]
+    d = np.arange(1, b, dtype=_F8) * (total / b)
+    if first_mn is None:
+        # not wide: the cells' cumulative weights, the targets' cells and the number of
+        # occupied cells (by weight when weighted) are all that is needed
+        ex, pos, nocc = _cell_ranks(cnt, hw, w, d)
+        if nocc <= b + 1:
+            return None  # few occupied cells, not measured: the exact methods
+    else:
+        ex = pos = None
+        occ = np.flatnonzero(cnt)
+        multi = occ[first_mn[occ] != first_mx[occ]]
     if first_mn is not None and multi.shape[0] == 0:
         # every occupied cell holds one value: the histogram is the exact summary
         return key_values(first_mn[occ]), None, (cnt[occ] if w is None else hw[occ]), total
-    if occ.shape[0] <= b + 1:
+    if first_mn is not None and occ.shape[0] <= b + 1:
         # few occupied cells: few distinct values, and the summary may stay exact. Sort the
         # rows of the cells holding several values (when they are few) for the exact entries.
-        if first_mn is None:
-            return None  # not measured: the exact methods
         nmulti = int(cnt[multi].sum())
         if nmulti * _SORT_DIV > n and nmulti > _FINISH_ROWS:
             return None  # the exact methods
@@ -775,13 +806,9 @@ def _direct(x, w, capacity, stats=None):
         return key_values(keys[o]), None, wts[o], total
     # the extremes' cells (by count, the first and last occupied: the map is monotone)
     ends = [int(c) for c in _cells_at(np.array([xmin, xmax]), emin, ncell, base, heavy_key, heavy)]
-    # exclusive cumulative weight of the cells (integer counts sum faster and exactly)
-    ex = np.empty(m, _F8)
-    ex[0] = 0.0
-    ex[1:] = np.cumsum(cnt[:-1]) if w is None else np.cumsum(hw[:-1])
-    d = np.arange(1, b, dtype=_F8) * (total / b)
+    if ex is None:
+        ex, pos = _cell_ranks_numpy(cnt, hw, w, d)
     t_idx = np.arange(d.shape[0])
-    pos = _locate(d, ex + hw, hw, np.zeros(d.shape[0], np.int64), np.full(d.shape[0], m, np.int64))
     res_k = np.zeros(d.shape[0], np.uint64)
     res_lo = np.zeros(d.shape[0], _F8)
     res_w = np.zeros(d.shape[0], _F8)
