@@ -264,7 +264,8 @@ def _sketch_columns(unit, spec: BuildSpec, where: str) -> tuple[dict, int]:
 
     side = [c for c in spec.columns_to_read() if c not in spec.features]
     cols = iter_unit(unit, side + list(spec.features), protocol=spec.protocol,
-                     storage_options=spec.storage_options or None, writeable=False)
+                     storage_options=spec.storage_options or None,
+                     views=frozenset(spec.features))  # the side columns are kept: copies
     pending = []
     sums = {}
     try:

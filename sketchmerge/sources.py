@@ -1837,7 +1837,7 @@ def read_unit(unit: Unit, columns: list[str], *, protocol: str,
 
 def iter_unit(unit: Unit, columns: list[str], *, protocol: str,
               storage_options: dict | None = None, verify: bool = True,
-              writeable: bool = True):
+              views=()):
     """:func:`read_unit` one column at a time, for a consumer that drops each column
     before asking for the next.
 
@@ -1847,8 +1847,9 @@ def iter_unit(unit: Unit, columns: list[str], *, protocol: str,
     consumer and this reader hold one column of the unit between them; CSV and Arrow
     IPC units are read whole first.  Raises what :func:`read_unit` raises, on the first
     ``next`` for what is wrong with the file and later for what is wrong with a column.
-    ``writeable=False`` lets a float64 column without nulls come back as a read-only
-    view of the decoded Arrow buffer (no copy), for a consumer that only reads.
+    ``views`` names the columns that may come back as read-only views of the decoded
+    Arrow buffer (no copy) when they are float64 without nulls, for a consumer that
+    only reads them and drops each before the next.
     """
     secrets = _secret_values(storage_options)
     fs = filesystem(protocol, storage_options)
@@ -1898,7 +1899,8 @@ def iter_unit(unit: Unit, columns: list[str], *, protocol: str,
             for c in cols:   # pop as we go: one source column alive at a time
                 if c in raw:
                     col = raw.pop(c)
-                    a, kinds[c] = _float64(col() if callable(col) else col, c, where, writeable)
+                    a, kinds[c] = _float64(col() if callable(col) else col, c, where,
+                                           writeable=c not in views)
                     del col
                 elif c in arrays:
                     a = arrays.pop(c)
