@@ -311,9 +311,8 @@ def per_unit(cfg: Config, p: Paths) -> dict:
     """One unit, one thread: read, sketch, encode and cache, each timed (CPU seconds)."""
     from sketchmerge import job
     from sketchmerge.blob import encode_summary_set
-    from sketchmerge.sources import open_dataset, read_unit
+    from sketchmerge.sources import iter_unit, open_dataset
     from sketchmerge.store import TableStore
-    from sketchmerge.summary import Summary
     from sketchmerge.tree import capacities
 
     ds = open_dataset(p.quarter, byte_budget=1)
@@ -330,10 +329,15 @@ def per_unit(cfg: Config, p: Paths) -> dict:
             best = min(best, time.process_time() - t)
         return best, out
 
-    t_read, (arrays, _, rows) = cpu(lambda: read_unit(unit, cols, protocol="file"))
+    def read_as_task():  # the task's read: feature columns as views, the weight copied
+        it = iter_unit(unit, cols, protocol="file", views=frozenset(FEATS))
+        n = next(it)
+        return {c: a for c, a, _ in it}, n
+
+    t_read, (arrays, rows) = cpu(read_as_task)
     w = arrays[W]
-    t_sketch, sums = cpu(lambda: {f: Summary.from_values(arrays[f], w, capacity=leaf_cap)
-                                  for f in FEATS})
+    # the task's sketch: weights validated once per unit (in _row_weights), not per feature
+    t_sketch, sums = cpu(lambda: {f: job._leaf(arrays[f], w, leaf_cap) for f in FEATS})
     t_sort, _ = cpu(lambda: [np.argsort(arrays[f]) for f in FEATS])
     t_enc, blob = cpu(lambda: encode_summary_set(sums, {"rows": rows}))
     keys = iter(f"{i:064x}" for i in range(1000))

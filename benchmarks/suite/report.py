@@ -156,9 +156,9 @@ def markdown(res: dict, meta: dict) -> str:
     if pu:
         out += ["", f"## One unit, one thread ({pu['rows']:,} rows, {pu['features']} features + weight)",
                 "", "| step | CPU | rate |", "|---|---|---|",
-                f"| read_unit (9 columns) | {1e3 * pu['read_cpu_s']:.1f} ms | "
+                f"| iter_unit (9 columns, features as views, as the task reads) | {1e3 * pu['read_cpu_s']:.1f} ms | "
                 f"{pu['read_values_per_s'] / 1e6:.0f} M values/s |",
-                f"| Summary.from_values x {pu['features']} (capacity {pu['leaf_capacity']}) | "
+                f"| sketch x {pu['features']} (capacity {pu['leaf_capacity']}, weights checked once) | "
                 f"{1e3 * pu['sketch_cpu_s']:.1f} ms | {pu['sketch_values_per_s'] / 1e6:.0f} M values/s |",
                 f"| numpy argsort x {pu['features']} (for scale) | {1e3 * pu['argsort_cpu_s']:.1f} ms | |",
                 f"| encode summary set | {1e3 * pu['encode_cpu_s']:.2f} ms | {pu['blob_bytes']:,} B |",
