@@ -128,7 +128,11 @@ def _row_weights(arrays: dict, spec: BuildSpec, where: str, rows: int) -> np.nda
                     spec.prediction_scale, where=f"{where}: prediction column {spec.prediction_column!r}")
         if bad.any():
             h = np.where(bad, 0.0, h)
-        w = h if w is None else w * h
+        if w is not None:
+            with np.errstate(over="ignore"):  # an overflow is caught by the check below
+                w = w * h
+        else:
+            w = h
     if w is not None and w is not checked:  # once per unit: the features' sketches trust it
         w = check_weights(w, rows, f"{where}: row weights")
     return w

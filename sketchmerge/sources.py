@@ -1633,7 +1633,9 @@ def _double_to_numpy(col: pa.ChunkedArray | pa.Array, writeable: bool = True) ->
         live = [c for c in chunks if len(c)]
         if len(live) == 1 and not live[0].null_count:
             c = live[0]
-            return np.frombuffer(c.buffers()[1], dtype=np.float64, count=len(c), offset=c.offset * 8)
+            v = np.frombuffer(c.buffers()[1], dtype=np.float64, count=len(c), offset=c.offset * 8)
+            v.flags.writeable = False  # Arrow's memory: a write would change the column
+            return v
     out = np.empty(len(col), dtype=np.float64)
     pos = 0
     for c in chunks:   # one chunk per row group or record batch, not per row

@@ -217,6 +217,16 @@ def test_bad_weights_and_predictions(tmp_path, client):
     rep = sketchmerge.build(str(tmp_path / "f"), str(tmp_path / "t"), client=client, weight_column="w",
                             missing_weight="zero", columns=["normal"])
     assert rep["version"] == 1
+    # finite weight x finite hessian can overflow: the product is checked once per unit
+    fr = make_frame(2000, 5)
+    fr["w"][:] = 1e300
+    fr["p"] = np.full(2000, 0.5)
+    fr["p"][11] = 700.0  # exp(700) ~ 1e304, finite; times 1e300 it is not
+    write_hive(str(tmp_path / "g"), [fr])
+    with pytest.raises(InputError, match=r"day=2026-11-01/part-0.parquet.*row weights.*inf.*position 11"):
+        sketchmerge.build(str(tmp_path / "g"), str(tmp_path / "t2"), client=client, weight_column="w",
+                          hessian="poisson", prediction_column="p", prediction_scale="margin")
+    assert not os.path.exists(tmp_path / "t2" / "CURRENT")
 
 
 def test_no_input(tmp_path, client):

@@ -759,3 +759,30 @@ def test_fingerprint_encoding_is_pinned(memfs):
     assert u.fingerprint == hashlib.sha256(doc.encode()).hexdigest()
     assert S._fingerprint("day=1/a.parquet#rg=0-1", 1234, "etag:abc", (0, 1)) == hashlib.sha256(
         b'["sketchmerge.unit/1","day=1/a.parquet#rg=0-1",1234,"etag:abc",[0,1]]').hexdigest()
+
+
+def test_iter_unit_views_are_read_only_and_equal_to_copies(tmp_path):
+    # columns named in views come back as read-only views when they are float64 without
+    # nulls (one chunk; a float32 column's cast too); columns with nulls and unnamed
+    # columns are fresh, writeable copies
+    rng = np.random.default_rng(3)
+    n = 10_000
+    a = rng.normal(size=n)
+    b = a.copy()
+    b[::7] = np.nan
+    t = pa.table({"a": a, "b": pa.array(b, from_pandas=True), "c": rng.random(n).astype(np.float32),
+                  "d": rng.random(n)})
+    pq.write_table(t, tmp_path / "x.parquet", row_group_size=2500)
+    ds = S.open_dataset(str(tmp_path))
+    unit = ds.units[0]
+    ref, _, _ = S.read_unit(unit, ["a", "b", "c", "d"], protocol=ds.protocol)
+    it = S.iter_unit(unit, ["a", "b", "c", "d"], protocol=ds.protocol, views={"a", "b", "c"})
+    assert next(it) == n
+    got = {c: arr for c, arr, _ in it}
+    for c in "abcd":
+        np.testing.assert_array_equal(got[c], ref[c])
+        assert ref[c].flags.writeable
+    assert not got["a"].flags.writeable  # a view of Arrow's buffer
+    assert got["b"].flags.writeable and np.isnan(got["b"][0])  # nulls: a copy with NaN
+    assert not got["c"].flags.writeable  # a view of the float64 cast's buffer
+    assert got["d"].flags.writeable  # not named: a copy

@@ -681,3 +681,34 @@ def test_release_scratch_keeps_results_and_frees_buffers():
     a = Summary.from_values(x, capacity=1000)
     release_scratch()
     assert Summary.from_values(x, capacity=1000) == a
+
+
+@pytest.mark.parametrize("dist", ["normal", "lognormal", "zero_inflated", "sentinels",
+                                  "point_masses", "few_distinct", "packed_in_one_cell"])
+@pytest.mark.parametrize("weighting", ["unit", "float", "mostly_zero"])
+def test_first_level_width_does_not_change_the_summary(dist, weighting, monkeypatch):
+    # The first level records counts and key ranges per cell (wide) only when the sample
+    # suggests few distinct values; the pruned entries must not depend on that choice,
+    # bit for bit, whichever way it goes.  "packed_in_one_cell": every value in one
+    # first-level cell (one binade, within one step of its top mantissa bits), which the
+    # narrow table hands to the exact methods.
+    import sketchmerge.summary as core
+
+    r = rng(77)
+    n, b = 120_000, 1000
+    x = (1e9 + r.random(n)) if dist == "packed_in_one_cell" else DISTRIBUTIONS[dist](r, n)
+    x = np.asarray(x, dtype=np.float64)
+    w = WEIGHTINGS[weighting](r, n)
+    real = core._first_map
+    got = {}
+    for wide in (False, True):
+        def forced(*a, _wide=wide, **k):
+            return real(*a, **k)[:5] + (_wide,)
+
+        monkeypatch.setattr(core, "_first_map", forced)
+        got[wide] = Summary.from_values(x, w, capacity=b)
+    monkeypatch.setattr(core, "_first_map", real)
+    assert got[False] == got[True]
+    assert got[False] == Summary.from_values(x, w, capacity=b)
+    if weighting == "unit":  # exact sums: the same as exact-then-prune, bit for bit
+        assert got[False] == Summary.from_values(x, w).prune(b)
