@@ -245,3 +245,36 @@ def test_bitpack_kernel_round_trips_every_width():
         np.testing.assert_array_equal(back, v)
     with pytest.raises(ValueError, match="short"):
         core._K.bitunpack(out[:nbytes - 1].tobytes(), 100, 32, back)
+
+
+def test_cell_ranks_match_numpy_cumsum_and_searchsorted():
+    # the kernel's cumulative weights and targets' cells against numpy's own cumsum and
+    # searchsorted (side="left"), on tables with empty cells and a target past the end
+    r = np.random.default_rng(8)
+    for trial in range(20):
+        m = int(r.integers(1, 3000))
+        h = np.where(r.random(m) < 0.3, 0.0, r.gamma(0.7, 2.0, m))
+        h[int(r.integers(0, m))] = 1.0  # at least one weighted cell
+        cnt = np.where(h > 0, r.integers(1, 9, m), 0).astype(np.int64)
+        for weighted in (True, False):
+            hv = h if weighted else cnt.astype(np.float64)
+            total = float(hv.sum())
+            d = np.sort(r.random(int(r.integers(1, 50)))) * total * 1.01  # some beyond the end
+            ex = np.empty(m)
+            pos = np.empty(d.shape[0], np.int64)
+            nocc = core._K.cell_ranks(h if weighted else None, None if weighted else cnt, d, ex, pos)
+            ref_ex = np.concatenate(([0.0], np.cumsum(hv)[:-1]))
+            np.testing.assert_array_equal(ex, ref_ex)
+            ref_pos = core._locate(d, ref_ex + hv, hv, np.zeros(d.shape[0], np.int64),
+                                   np.full(d.shape[0], m, np.int64))
+            np.testing.assert_array_equal(pos, ref_pos)
+            assert hv[pos].min() > 0.0
+            assert nocc == int(np.count_nonzero(hv))
+
+
+def test_cell_ranks_refuses_bad_arguments():
+    h, d = np.ones(4), np.ones(2)
+    with pytest.raises(TypeError, match="exactly one"):
+        core._K.cell_ranks(h, np.ones(4, np.int64), d, np.empty(4), np.empty(2, np.int64))
+    with pytest.raises(ValueError, match="lengths"):
+        core._K.cell_ranks(h, None, d, np.empty(3), np.empty(2, np.int64))
