@@ -150,7 +150,8 @@ _FINISH_ROWS = 8192     # rows left in refined cells: sort them instead of bucke
 _SORT_DIV = 4           # targets' cells hold at most 1/_SORT_DIV of the rows: sort them at once
 _FIRST_BITS = 16        # at most 2**16 first-level cells
 _DIRECT_ROWS = 24       # direct pruned construction from this many rows per unit of capacity
-_SCRATCH_MAX = 1 << 20  # scratch buffers up to this many elements are kept per thread
+_SCRATCH_MAX = 1 << 20  # scratch buffers up to this many float64 rows are kept per thread
+_SCRATCH_BYTES = 8 * _SCRATCH_MAX
 EXACT_METHODS = ("auto", "sort", "count", "radix", "buckets")
 
 _tls = threading.local()
@@ -170,15 +171,18 @@ def release_scratch() -> None:
 def _scratch(slot: str, n: int, dtype) -> np.ndarray:
     """A per-thread scratch array of ``n`` elements (garbage contents); never return one."""
     dt = np.dtype(dtype)
-    if n > _SCRATCH_MAX:
+    need = n * dt.itemsize
+    if need > _SCRATCH_BYTES:  # the cap is in bytes: a byte-typed work area counts as its rows
         return np.empty(n, dt)
     bufs = getattr(_tls, "bufs", None)
     if bufs is None:
         bufs = _tls.bufs = {}
-    need = n * dt.itemsize
     buf = bufs.get(slot)
     if buf is None or buf.nbytes < need:
-        buf = bufs[slot] = np.empty(max(need, 1 << 16), np.uint8)
+        # a quarter of headroom: row counts differ a little from unit to unit (NaNs,
+        # flagged rows), and replacing a buffer for a few more rows faults it in again
+        size = min(max(need + need // 4, 1 << 16), max(need, _SCRATCH_BYTES))
+        buf = bufs[slot] = np.empty(size, np.uint8)
     return buf[:need].view(dt)
 
 
