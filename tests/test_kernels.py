@@ -101,6 +101,41 @@ def test_scan_against_numpy_reductions():
         assert order == expect
 
 
+def _scan_reference(x):
+    """numpy's reductions: NaN count, nanmin, nanmax and the order of the non-NaN values."""
+    ok = x[~np.isnan(x)]
+    if ok.size == 0:
+        return int(x.size), None, None, 1
+    order = 1 if np.all(ok[1:] >= ok[:-1]) else (-1 if np.all(ok[1:] <= ok[:-1]) else 0)
+    return int(x.size - ok.size), np.nanmin(x), np.nanmax(x), order
+
+
+def test_scan_every_position_of_the_vector_loop():
+    # the scan takes four values a step: one out-of-order value, a NaN or an extreme at
+    # each position of short arrays checks the steps, the tail and the first value
+    r = np.random.default_rng(5)
+    cases = [np.empty(0)]
+    for n in range(1, 14):
+        up = np.sort(r.normal(size=n))
+        cases += [up, up[::-1].copy(), np.full(n, -np.inf), np.full(n, np.nan)]
+        for k in range(n):
+            bad = up.copy()
+            bad[k] = up[-1] + 1.0 if k < n - 1 else up[0] - 1.0  # breaks the order at k
+            nan = up.copy()
+            nan[k] = np.nan
+            big = r.normal(size=n)
+            big[k] = np.inf if k % 2 else -np.inf
+            cases += [bad, bad[::-1].copy(), nan, nan[::-1].copy(), big]
+    for x in cases:
+        nan, lo, hi, order = core._K.scan(x)
+        e_nan, e_lo, e_hi, e_order = _scan_reference(x)
+        assert (nan, order) == (e_nan, e_order), x
+        if e_lo is None:
+            assert np.isnan(lo) and np.isnan(hi)
+        else:
+            assert (lo, hi) == (e_lo, e_hi), x
+
+
 def test_weights_ok_finds_the_first_bad_weight():
     w = np.ones(100)
     assert core._K.weights_ok(w) == -1
