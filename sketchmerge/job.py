@@ -348,6 +348,21 @@ def _is_ref(c) -> bool:
     return isinstance(c, tuple) and len(c) == 2 and c[0] in ("cached", "stored")
 
 
+class UnreadableCacheError(FormatError):
+    """A blob reused from the table's cache is missing or fails its checks.
+
+    Blobs are cache entries written without fsync (store.put_blob), so a crash can lose
+    or tear one; :func:`build` then sketches that subtree again instead of failing.
+    """
+
+    def __init__(self, message: str, key: str):
+        super().__init__(message)
+        self.key = key
+
+    def __reduce__(self):  # picklable from a worker process
+        return (type(self), (str(self), self.key))
+
+
 def merge_task(children: list, capacity: int, key: str, table_url: str, table_options: dict):
     """Worker task: merge children (blobs, or keys of blobs in TABLE: cached by an earlier
     build or stored by this one) and cache the result; returns ``("stored", key)`` (or,
@@ -360,13 +375,25 @@ def merge_task(children: list, capacity: int, key: str, table_url: str, table_op
         if _is_ref(c):
             b = fetched.pop(c[1], None)
             if b is None:
-                what = "cached" if c[0] == "cached" else "stored"
-                raise FormatError(f"{what} blob {c[1]} vanished from the table store during the build")
+                if c[0] == "cached":
+                    raise UnreadableCacheError(f"cached blob {c[1]} is missing from the table store",
+                                               c[1])
+                raise FormatError(f"stored blob {c[1]} vanished from the table store during the build")
             blobs.append(b)
         else:
             blobs.append(c)
-    with _Running():
-        out = merge_blobs(blobs, capacity)
+    try:
+        with _Running():
+            out = merge_blobs(blobs, capacity)
+    except FormatError as e:
+        for c, b in zip(children, blobs):  # a reused blob that fails its checks: say which
+            if _is_ref(c) and c[0] == "cached":
+                try:
+                    open_summary_set(b)
+                except FormatError as bad:
+                    raise UnreadableCacheError(f"cached blob {c[1]} is unreadable: {bad}",
+                                               c[1]) from e
+        raise
     del blobs
     if st is not None:
         st.put_blob(key, out)
@@ -584,38 +611,55 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
             log.warning("manifest of version %s of %s is unreadable (%s); building in full", current, store.url, e)
             kept = set()
         cached = store.existing_blobs([k for k in plan.all_keys() if k in kept])
-    needed: set[str] = set()
-    # walk top-down: a cached node hides its whole subtree
     by_key = {n.key: n for n in plan.leaves}
     for lvl in plan.levels:
         by_key.update({n.key: n for n in lvl})
     root = plan.root
-    stack = [root] if root else []
-    while stack:
-        k = stack.pop()
-        if k in cached:
-            continue
-        needed.add(k)
-        stack.extend(by_key[k].children)
-    sketch = [n for n in plan.leaves if n.key in needed]
-    reused_leaves = len(plan.leaves) - len(sketch)
     unit_of = dict(zip(leaf_keys, units))
 
+    def needed_nodes() -> set:
+        need: set[str] = set()
+        stack = [root] if root else []
+        while stack:  # walk top-down: a cached node hides its whole subtree
+            k = stack.pop()
+            if k in cached:
+                continue
+            need.add(k)
+            stack.extend(by_key[k].children)
+        return need
+
     root_blob = None
-    if root is None:
-        root_blob = encode_summary_set({f: Summary.empty() for f in features}, {"rows": 0})
-    elif root in cached:
-        root_blob = store.get_blob(root)
-        if root_blob is None:
-            raise FormatError(f"cached root blob {root} vanished from {store.url}")
-    else:
-        root_blob = _run_graph(plan, needed, unit_of, spec, cached, client, scheduler,
-                               scheduler_file, workers, json_mode)
-        if _is_ref(root_blob):
-            key = root_blob[1]
-            root_blob = store.get_blob(key)
-            if root_blob is None:
-                raise FormatError(f"root blob {key} vanished from {store.url} during the build")
+    for attempt in range(4):  # each retry drops one unreadable cached blob
+        needed = needed_nodes()
+        try:
+            if root is None:
+                root_blob = encode_summary_set({f: Summary.empty() for f in features}, {"rows": 0})
+            elif root in cached:
+                root_blob = store.get_blob(root)
+                if root_blob is None:
+                    raise UnreadableCacheError(f"cached root blob {root} is missing from {store.url}", root)
+                try:
+                    open_summary_set(root_blob)
+                except FormatError as e:
+                    raise UnreadableCacheError(f"cached root blob {root} is unreadable: {e}", root) from e
+            else:
+                root_blob = _run_graph(plan, needed, unit_of, spec, cached, client, scheduler,
+                                       scheduler_file, workers, json_mode)
+                if _is_ref(root_blob):
+                    key = root_blob[1]
+                    root_blob = store.get_blob(key)
+                    if root_blob is None:
+                        raise FormatError(f"root blob {key} vanished from {store.url} during the build")
+            break
+        except UnreadableCacheError as e:
+            if attempt == 3 or e.key not in cached:
+                raise
+            # a crash can lose or tear a cache entry (blobs are written without fsync):
+            # sketch what it covered again; the same key gets the same bytes
+            log.warning("%s; sketching the units under it again", e)
+            cached.discard(e.key)
+    sketch = [n for n in plan.leaves if n.key in needed]
+    reused_leaves = len(plan.leaves) - len(sketch)
     sets, meta = decode_summary_set(root_blob)
     rows = int(meta.get("rows", 0))
     if rows == 0:

@@ -147,3 +147,73 @@ def test_killed_builder_leaves_previous_version(tmp_path, client, trial):
     r = sketchmerge.build(src, table, client=client, bins=16)  # the next run completes
     assert r["version"] in (2, 3)
     assert sketchmerge.load(table).rows == 3 * 2 * 20_000
+
+
+@pytest.mark.parametrize("damage", ["torn", "zero length", "lost"])
+def test_a_damaged_cache_blob_is_sketched_again(tmp_path, damage, caplog):
+    # unit blobs are cache entries written without fsync: after a crash one can be torn,
+    # empty or gone.  A refresh (and an unchanged rerun, whose root blob is damaged) finds
+    # it by its checks, sketches what it covered again and publishes what a full build does.
+    src, table = str(tmp_path / "src"), str(tmp_path / "table")
+    kw = dict(weight_column="w", bins=32, byte_budget=40_000, workers=2)
+    for day in (1, 2, 3):
+        write_day(src, day)
+    sketchmerge.build(src, table, **kw)
+    blobs = os.path.join(table, "blobs")
+
+    def hurt(key):
+        path = os.path.join(blobs, key)
+        if damage == "lost":
+            os.remove(path)
+            return
+        with open(path, "rb") as f:
+            data = f.read()
+        with open(path, "wb") as f:
+            f.write(b"" if damage == "zero length" else data[: len(data) // 2])
+
+    root = sketchmerge.load(table).content["root"]
+    leaves = sorted(k for k in TableStore(table).existing_blobs() if k != root)
+    hurt(leaves[0])
+    hurt(root)
+    time.sleep(0.01)
+    write_day(src, 4)
+    with caplog.at_level("WARNING", logger="sketchmerge"):
+        r = sketchmerge.build(src, table, **kw)
+    assert r["changed"] and r["version"] == 2
+    full = str(tmp_path / "full")
+    sketchmerge.build(src, full, full=True, **kw)
+    assert sketchmerge.load(table).content_sha256 == sketchmerge.load(full).content_sha256
+    if damage != "lost":  # a lost blob is simply not in the cache; a damaged one is named
+        assert any("is unreadable" in m for m in caplog.messages), caplog.messages
+    # an unchanged rerun whose cached root is damaged rebuilds it and publishes nothing new
+    hurt(sketchmerge.load(table).content["root"])
+    r = sketchmerge.build(src, table, **kw)
+    assert r["changed"] is False and r["version"] == 2
+    assert sketchmerge.load(table).content_sha256 == sketchmerge.load(full).content_sha256
+    assert sketchmerge.build(src, table, **kw)["changed"] is False  # the root blob is whole again
+
+
+def test_blobs_skip_fsync_and_published_state_keeps_it(tmp_path, monkeypatch):
+    # common practice for crash-safe files: fsync the content and the folder before a
+    # rename makes the name durable.  Published state (version, manifest, pointer) is
+    # fsynced; cache blobs, rebuilt when damaged (above), are not.
+    if not os.path.isdir("/proc/self/fd"):
+        pytest.skip("needs /proc to name the fsynced files")
+    src, table = str(tmp_path / "src"), str(tmp_path / "table")
+    write_day(src, 1)
+    synced = []
+    real = os.fsync
+
+    def spy(fd):
+        synced.append(os.readlink(f"/proc/self/fd/{fd}"))
+        return real(fd)
+
+    monkeypatch.setattr(os, "fsync", spy)
+    sketchmerge.build(src, table, bins=16, byte_budget=40_000, workers=1)
+    keys = TableStore(table).existing_blobs()
+    assert len(keys) >= 3
+    assert not [p for p in synced if p.endswith(os.sep + "blobs") or any(k in p for k in keys)]
+    names = [p.rsplit(os.sep, 1)[-1] for p in synced]
+    for published in ("v00000001.cuts.tmp", "v00000001.keys.tmp", "CURRENT.tmp"):
+        assert any(n.endswith("-" + published) for n in names), (published, names)
+    assert any(p.endswith(os.sep + "versions") for p in synced)  # and their folder
