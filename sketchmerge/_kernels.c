@@ -847,41 +847,49 @@ k_merge_bounds(PyObject *self, PyObject *args)
         Py_ssize_t count = 0;
         int nomem = 0;
         Py_BEGIN_ALLOW_THREADS
+        /* per part: its next entry g, that entry's value h (NaN once the part is used
+           up: it never compares equal and never wins the minimum), and the bounds it
+           adds at a point that is not one of its entries (cl, ch), updated only when
+           the part moves on.  Each term and the order of the additions are those of
+           the definition above, so the sums are the same bits. */
         Py_ssize_t *g = (Py_ssize_t *)PyMem_RawMalloc((size_t)k * sizeof(Py_ssize_t));
-        if (g == NULL) {
+        double *st = (double *)PyMem_RawMalloc((size_t)(3 * k + 1) * sizeof(double));
+        if (g == NULL || st == NULL) {
             nomem = 1;
         } else {
-            for (Py_ssize_t p = 0; p < k; p++)
+            double *h = st, *cl = st + k, *ch = st + 2 * k;
+            Py_ssize_t left = 0;
+            for (Py_ssize_t p = 0; p < k; p++) {
                 g[p] = off[p];
-            for (;;) {
-                int any = 0;
-                double v = 0.0;
-                for (Py_ssize_t p = 0; p < k; p++) {
-                    if (g[p] < off[p + 1] && (!any || x[g[p]] < v)) {
-                        v = x[g[p]];
-                        any = 1;
-                    }
-                }
-                if (!any)
-                    break;
+                h[p] = off[p] < off[p + 1] ? x[off[p]] : NAN;
+                cl[p] = ch[p] = 0.0;  /* below the part's minimum (or an empty part) */
+                left += off[p + 1] - off[p];
+            }
+            while (left > 0) {
+                double v = INFINITY;
+                for (Py_ssize_t p = 0; p < k; p++)
+                    v = h[p] < v ? h[p] : v;
                 double sl = 0.0, sh = 0.0, sw = 0.0;
                 for (Py_ssize_t p = 0; p < k; p++) {
-                    Py_ssize_t j = g[p], a = off[p], e = off[p + 1];
                     double fl, fh, fw = 0.0;
-                    if (j < e && x[j] == v) {
+                    if (h[p] == v) {
+                        Py_ssize_t j = g[p], e = off[p + 1];
                         fl = rmin[j];
                         fh = rmax[j];
                         fw = w[j];
                         g[p] = j + 1;
-                    } else if (j == a) {
-                        fl = 0.0;
-                        fh = 0.0;
-                    } else if (j == e) {
-                        fl = tot[p];
-                        fh = tot[p];
+                        left--;
+                        if (j + 1 < e) {
+                            h[p] = x[j + 1];
+                            cl[p] = rmin[j] + w[j];
+                            ch[p] = rmax[j + 1] - w[j + 1];
+                        } else {
+                            h[p] = NAN;
+                            cl[p] = ch[p] = tot[p];  /* above the part's maximum */
+                        }
                     } else {
-                        fl = rmin[j - 1] + w[j - 1];
-                        fh = rmax[j] - w[j];
+                        fl = cl[p];
+                        fh = ch[p];
                     }
                     sl += fl;
                     sh += fh;
@@ -893,8 +901,9 @@ k_merge_bounds(PyObject *self, PyObject *args)
                 wz[count] = sw;
                 count++;
             }
-            PyMem_RawFree(g);
         }
+        PyMem_RawFree(st);
+        PyMem_RawFree(g);
         Py_END_ALLOW_THREADS
         if (nomem) {
             PyErr_NoMemory();
