@@ -866,9 +866,20 @@ k_merge_bounds(PyObject *self, PyObject *args)
                 left += off[p + 1] - off[p];
             }
             while (left > 0) {
-                double v = INFINITY;
-                for (Py_ssize_t p = 0; p < k; p++)
-                    v = h[p] < v ? h[p] : v;
+                /* the smallest head: four independent minima (a NaN head never wins) */
+                double v0 = INFINITY, v1 = INFINITY, v2 = INFINITY, v3 = INFINITY;
+                Py_ssize_t p4 = 0;
+                for (; p4 + 4 <= k; p4 += 4) {
+                    v0 = h[p4] < v0 ? h[p4] : v0;
+                    v1 = h[p4 + 1] < v1 ? h[p4 + 1] : v1;
+                    v2 = h[p4 + 2] < v2 ? h[p4 + 2] : v2;
+                    v3 = h[p4 + 3] < v3 ? h[p4 + 3] : v3;
+                }
+                for (; p4 < k; p4++)
+                    v0 = h[p4] < v0 ? h[p4] : v0;
+                v0 = v1 < v0 ? v1 : v0;
+                v2 = v3 < v2 ? v3 : v2;
+                double v = v2 < v0 ? v2 : v0;
                 double sl = 0.0, sh = 0.0, sw = 0.0;
                 for (Py_ssize_t p = 0; p < k; p++) {
                     double fl, fh, fw = 0.0;
@@ -1025,8 +1036,8 @@ k_bitunpack(PyObject *self, PyObject *args)
     Py_RETURN_NONE;
 }
 
-/* The bit reader of bitunpack, on a stream already checked by the caller:
-   returns -1 when it is too short for its widths or a width exceeds 64. */
+/* The bit reader of bitunpack and unpack_packed: returns -1 when the stream's
+   length is not the one its widths need, a padding bit is set or a width exceeds 64. */
 static int
 read_stream(const uint8_t *d, Py_ssize_t len, Py_ssize_t m, Py_ssize_t block, uint64_t *out)
 {
@@ -1040,7 +1051,8 @@ read_stream(const uint8_t *d, Py_ssize_t len, Py_ssize_t m, Py_ssize_t block, ui
             return -1;
         bits += (long long)d[b] * (s1 - s0);
     }
-    if (len - nb < (bits + 7) / 8)
+    /* exactly the bytes the widths need, and zero padding bits (as blob._check_bits) */
+    if (len - nb != (bits + 7) / 8 || (bits % 8 && (d[len - 1] >> (bits % 8))))
         return -1;
     /* a zero-padded copy of the data, so that every value is two 8-byte loads */
     Py_ssize_t dlen = len - nb;

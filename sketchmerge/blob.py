@@ -595,10 +595,10 @@ def _unpack_packed(p: dict, v: dict, what: str):
             raise FormatError(f"{what}: expected {key!r} in [0, 63], got {_short(p[key])}")
     counts = {"x_bits": n - 1, "w_bits": n} if exact else \
         {"x_bits": n - 1, "rmin_bits": n - 1, "w_bits": n, "u_bits": n}
-    widths = [_check_bits(p[key], m, key, what) for key, m in counts.items()]
-    if _core._K is not None:
-        # the compiled decoder: the same numbers in one pass; on any complaint the numpy
-        # route below runs to raise its own message
+    if _core._K is not None and all(len(p[key]) >= -(-m // _BLOCK) for key, m in counts.items()):
+        # the compiled decoder: the same checks and numbers in one pass; on any complaint
+        # the numpy route below runs to raise its own message.  (Each stream holds at
+        # least its width bytes, so n is bounded by the blob's length before allocating.)
         x, w = np.empty(n), np.empty(n)
         lo, hi = (None, None) if exact else (np.empty(n), np.empty(n))
         code = _core._K.unpack_packed(p["x_bits"], None if exact else p["rmin_bits"], p["w_bits"],
@@ -607,6 +607,7 @@ def _unpack_packed(p: dict, v: dict, what: str):
                                       0 if exact else p["rmin_shift"], q, x, lo, hi, w)
         if code == 0:
             return "floats", x, lo, hi, w
+    widths = [_check_bits(p[key], m, key, what) for key, m in counts.items()]
     streams = dict(zip(counts, _unpack_streams([p[k] for k in counts], list(counts.values()), widths)))
     x = key_values(_unpredict(p["x_start"], p["x_shift"], streams["x_bits"]))
     if exact:

@@ -1032,7 +1032,8 @@ def _merged_bounds(parts):
                               np.concatenate([p._rmax for p in parts]),
                               np.concatenate([p._w for p in parts]), off,
                               np.array([p._total for p in parts], _F8), *out)
-        return tuple(a[:cnt].copy() if cnt < n else a for a in out)
+        # shared points make the union shorter: copy only when that frees much memory
+        return tuple(a[:cnt].copy() if 4 * cnt < 3 * n else a[:cnt] for a in out)
     z = np.unique(np.concatenate([p._x for p in parts]))
     lo, hi, wz = np.zeros(z.shape[0], _F8), np.zeros(z.shape[0], _F8), np.zeros(z.shape[0], _F8)
     for p in parts:

@@ -411,7 +411,7 @@ def refresh(cfg: Config, p: Paths, cl: Cluster) -> dict:
     src = data.link_subset(p.main, os.path.join(p.work, "refresh-src"), names)
     table = os.path.join(p.work, "refresh-table")
     full = float("inf")
-    for _ in range(max(2, cfg.repeats - 1)):
+    for _ in range(max(2, cfg.repeats)):
         t, rep = _timed_build(src, _fresh(table), cl.client, byte_budget=1, full=True)
         full = min(full, t)
     units = rep["partitions_total"]
@@ -419,7 +419,7 @@ def refresh(cfg: Config, p: Paths, cl: Cluster) -> dict:
     # one new unit, repeated: add it (timed), then remove it again (untimed), so that each
     # repeat sketches the unit and recomputes its path (the current version never holds them)
     news = []
-    for _ in range(max(3, cfg.repeats + 1)):
+    for _ in range(max(3, cfg.repeats + 2)):
         os.link(data.data_files(p.quarter)[0], new)   # sorts after every other file: a new day
         t, rep_new = _timed_build(src, table, cl.client, byte_budget=1)
         news.append(t)
