@@ -364,7 +364,13 @@ def per_unit(cfg: Config, p: Paths) -> dict:
                          prediction_column=None, prediction_scale=None, missing_weight="error",
                          leaf_capacity=leaf_cap, protocol="file",
                          dtypes=tuple((f, "float64") for f in FEATS))
-    t_task, _ = cpu(lambda: job.sketch_unit(unit, spec, next(keys)))
+    # one thread, as on a busy worker: a lone task would hand its features to the pool
+    # and this CPU figure would count the threads' contention too
+    job._THREADS[0] = 1
+    try:
+        t_task, _ = cpu(lambda: job.sketch_unit(unit, spec, next(keys)))
+    finally:
+        job._THREADS[0] = None
     entries = {f: len(s) for f, s in sums.items()}
     return {"rows": rows, "features": len(FEATS), "leaf_capacity": leaf_cap,
             "read_cpu_s": t_read, "sketch_cpu_s": t_sketch, "argsort_cpu_s": t_sort,
