@@ -98,6 +98,15 @@ def _tree_bytes(folder: str) -> tuple[int, int]:
     return n, b
 
 
+def _warm(folder: str) -> None:
+    """Read every file of ``folder`` once, untimed, so that each timed run finds the
+    page cache as warm as the others (on this shared machine it cools within minutes)."""
+    for f in data.data_files(folder):
+        with open(f, "rb") as fh:
+            while fh.read(8 << 20):
+                pass
+
+
 def _cli_build(source: str, table: str, *args: str, env: dict | None = None) -> proc.Run:
     return proc.run(proc.sketchmerge_cli("build", source, "--out", _fresh(table), "--json",
                                          "--quiet", *args), env=env)
@@ -126,6 +135,7 @@ def whole_process(cfg: Config, p: Paths) -> dict:
     tables = {name: os.path.join(p.work, f"wp-{name}") for name, _ in kinds}
     rounds = max(1, cfg.repeats + 2) if cfg.extras else cfg.repeats
     scans, builds = [], {name: [] for name, _ in kinds}
+    _warm(p.main)  # a cold page cache would slow the first round's scan, not the others
     for _ in range(rounds):
         scans.append(proc.run(proc.python("-m", "suite.tasks", "scan", p.main, cols)))
         for name, env in kinds:
@@ -197,6 +207,7 @@ def versus_dask(cfg: Config, p: Paths, weighted_table: str) -> dict:
 
     feats = ",".join(FEATS)
     qfile = os.path.join(p.work, "dask-quantiles.npz")
+    _warm(p.main)
     dq = _best(lambda i: proc.run(proc.python("-m", "suite.tasks", "dask", p.main, feats,
                                               str(cfg.bins), qfile)), cfg.repeats)
     table = os.path.join(p.work, "vs-dask-unweighted")
