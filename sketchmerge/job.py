@@ -259,19 +259,51 @@ def _sketch_one(name, a, w, capacity, dtype, where):
     return _with_dtype(s, dtype)
 
 
-def _sketch_columns(unit, spec: BuildSpec, where: str) -> tuple[dict, int]:
-    """Summaries of one unit's features, reading the weight inputs first and then one
-    feature column at a time.  Each column is sketched on the feature pool while the next
-    is read, at most two at a time, and dropped once its summary is built: a task holds the
-    weights, up to three feature columns and the summaries, not every selected column."""
+def _sketch_part(unit, spec: BuildSpec, names: list, w, rows: int, where: str) -> dict:
+    """Read and sketch some of a unit's feature columns, one at a time, in this thread
+    (with a reader of its own: two threads never share one open file)."""
     from .sources import iter_unit
 
+    cols = iter_unit(unit, names, protocol=spec.protocol,
+                     storage_options=spec.storage_options or None, views=frozenset(names))
+    unified = dict(spec.dtypes)
+    out = {}
+    try:
+        n = next(cols)
+        if n != rows:
+            raise InputError(f"{where}: expected {rows} rows, got {n} on a second read: "
+                             "the file changed during the build")
+        for name, a, dtype in cols:
+            out[name] = _sketch_one(name, a, w, spec.leaf_capacity,
+                                    unified.get(name) or dtype or "float64", where)
+            del a
+    finally:
+        cols.close()
+    return out
+
+
+def _sketch_columns(unit, spec: BuildSpec, where: str) -> tuple[dict, int]:
+    """Summaries of one unit's features, reading the weight inputs first and then one
+    feature column at a time, each dropped once its summary is built: a task holds the
+    weights, one or two feature columns and the summaries, not every selected column.
+
+    When this process has a core without a task of its own (the new unit of a nightly
+    refresh, the last units of a build), every other feature is read and sketched by a
+    pool thread with its own reader, so the two halves run side by side; otherwise all
+    of it runs in the task's thread, since more threads than cores only fight over the
+    GIL.  Either way the summaries, and so the blob, are the same.
+    """
+    from .sources import iter_unit
+
+    feats = list(spec.features)
     side = [c for c in spec.columns_to_read() if c not in spec.features]
-    cols = iter_unit(unit, side + list(spec.features), protocol=spec.protocol,
+    other = feats[1::2] if len(feats) > 1 and _Running.spare() else []
+    mine = [f for f in feats if f not in set(other)]
+    cols = iter_unit(unit, side + mine, protocol=spec.protocol,
                      storage_options=spec.storage_options or None,
-                     views=frozenset(spec.features))  # the side columns are kept: copies
-    pending = []
-    sums = {}
+                     views=frozenset(mine))  # the side columns are kept: copies
+    unified = dict(spec.dtypes)
+    sums, fut = {}, None
     try:
         rows = next(cols)
         arrays = {}
@@ -280,24 +312,20 @@ def _sketch_columns(unit, spec: BuildSpec, where: str) -> tuple[dict, int]:
             arrays[name] = a
         w = _row_weights(arrays, spec, where, rows)
         del arrays
-        unified = dict(spec.dtypes)
+        if other:
+            fut = _feature_pool().submit(_sketch_part, unit, spec, other, w, rows, where)
         for name, a, dtype in cols:
-            parallel = _Running.spare()  # asked per column: other tasks start and finish
-            pending.append((name, _submit(parallel, _sketch_one, name, a, w, spec.leaf_capacity,
-                                          unified.get(name) or dtype or "float64", where)))
+            sums[name] = _sketch_one(name, a, w, spec.leaf_capacity,
+                                     unified.get(name) or dtype or "float64", where)
             del a
-            while len(pending) >= (2 if parallel else 1):
-                n0, f0 = pending.pop(0)
-                sums[n0] = f0.result()
-        for n0, f0 in pending:
-            sums[n0] = f0.result()
-        pending = []
+        if fut is not None:
+            f, fut = fut, None
+            sums.update(f.result())
     finally:
-        for _, f in pending:  # an error on the way: let the sketches in flight finish first
-            if not f.cancel():
-                f.exception()
+        if fut is not None:  # an error on this side: let the other half finish first
+            fut.exception()
         cols.close()
-    return sums, rows
+    return {f: sums[f] for f in feats}, rows
 
 
 def sketch_unit(unit, spec: BuildSpec, key: str):
