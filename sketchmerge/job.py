@@ -656,8 +656,20 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
             stack.extend(by_key[k].children)
         return need
 
+    def unreadable(keys) -> set:
+        """Of cached ``keys``, those missing or failing their checks."""
+        got = store.get_blobs(sorted(keys))
+        bad = set(keys) - set(got)
+        for k, b in got.items():
+            try:
+                open_summary_set(b)
+            except FormatError:
+                bad.add(k)
+        return bad
+
     root_blob = None
-    for attempt in range(4):  # each retry drops one unreadable cached blob
+    attempts = len(cached) + 2  # every retry drops at least one cached blob
+    for attempt in range(attempts):
         needed = needed_nodes()
         try:
             if root is None:
@@ -680,12 +692,19 @@ def build(source: str, out: str, *, bins: int | None = None, rank_error: float |
                         raise FormatError(f"root blob {key} vanished from {store.url} during the build")
             break
         except UnreadableCacheError as e:
-            if attempt == 3 or e.key not in cached:
+            if attempt == attempts - 1 or e.key not in cached:
                 raise
-            # a crash can lose or tear a cache entry (blobs are written without fsync):
-            # sketch what it covered again; the same key gets the same bytes
-            log.warning("%s; sketching the units under it again", e)
+            # a crash can lose or tear cache entries (blobs are written without fsync),
+            # usually several: check every cached blob the graph reads, drop the bad
+            # ones and sketch what they covered again (a key always gets the same bytes)
             cached.discard(e.key)
+            reads = {c for k in needed_nodes() for c in by_key[k].children if c in cached}
+            if root in cached:
+                reads.add(root)
+            bad = unreadable(reads)
+            log.warning("%s; %d more cached blob(s) unreadable; sketching the units under "
+                        "them again", e, len(bad))
+            cached -= bad
     sketch = [n for n in plan.leaves if n.key in needed]
     reused_leaves = len(plan.leaves) - len(sketch)
     sets, meta = decode_summary_set(root_blob)
