@@ -574,9 +574,12 @@ def merges(cfg: Config, p: Paths) -> dict:
                 ts = []
                 for j, nd in enumerate(lvl[::step][:cfg.merge_sample]):
                     kids = [kids_pool[j * 8 + c] for c in range(len(nd.children))]
-                    t = time.process_time()
-                    merge_blobs(kids, plan.node_capacity)
-                    ts.append(time.process_time() - t)
+                    best = float("inf")
+                    for _ in range(2):  # a sampled node stands for many: one spike would too
+                        t = time.process_time()
+                        merge_blobs(kids, plan.node_capacity)
+                        best = min(best, time.process_time() - t)
+                    ts.append(best)
                 mean = float(np.mean(ts))
                 levels.append({"level": lvl[0].level, "nodes": len(lvl), "timed": len(ts),
                                "mean_children": float(np.mean([len(x.children) for x in lvl])),
