@@ -34,15 +34,18 @@ def goals(res: dict) -> list[tuple[str, str, str, str]]:
             if name not in wp:
                 continue
             b = wp[name]
-            paired = (f"; median of {wp['rounds']} interleaved rounds {b['ratio_wall_median']:.2f}x, "
-                      f"range {b['ratio_wall_range'][0]:.2f}-{b['ratio_wall_range'][1]:.2f}x"
-                      if "ratio_wall_median" in b else "")
+            # judged on the median of the interleaved rounds (each ratio pairs runs that
+            # met the same machine); best of each beside it
+            judged = b.get("ratio_wall_median", b["ratio_wall"])
+            measured = (f"{b['ratio_wall_median']:.2f}x, median of {wp['rounds']} interleaved rounds "
+                        f"(range {b['ratio_wall_range'][0]:.2f}-{b['ratio_wall_range'][1]:.2f}x); "
+                        f"best of each {b['ratio_wall']:.2f}x ({_s(b['wall_s'])} / "
+                        f"{_s(wp['scan']['wall_s'])})" if "ratio_wall_median" in b else
+                        f"{b['ratio_wall']:.2f}x ({_s(b['wall_s'])} / {_s(wp['scan']['wall_s'])})")
             rows.append((f"weighted build / pyarrow scan, wall ({label}, {b['units']} units)",
-                         f"{b['ratio_wall']:.2f}x ({_s(b['wall_s'])} / {_s(wp['scan']['wall_s'])}, "
-                         f"best of each{paired})",
-                         "<= 1.5x (milestone 2.5x)",
-                         "met" if b["ratio_wall"] <= 1.5 else
-                         ("milestone only" if b["ratio_wall"] <= 2.5 else "**not met**")))
+                         measured, "<= 1.5x (milestone 2.5x)",
+                         "met" if judged <= 1.5 else
+                         ("milestone only" if judged <= 2.5 else "**not met**")))
             rows.append((f"weighted build / pyarrow scan, CPU ({label})",
                          f"{b['ratio_cpu']:.2f}x ({_s(b['cpu_s'])} / {_s(wp['scan']['cpu_s'])})",
                          "(reported)", ""))
@@ -124,14 +127,17 @@ def goals(res: dict) -> list[tuple[str, str, str, str]]:
                      "linear (flat per unit)", _ok(m["per_unit_spread"] <= 1.5)))
     r = res.get("refresh")
     if r:
+        best = (f"best of each {r['new_unit_ratio']:.3f} ({_s(r['new_unit_s'])} / {_s(r['full_s'])}; "
+                f"{len(r.get('new_unit_s_all', [0]))} refreshes, "
+                f"{min(r.get('new_unit_s_all', [r['new_unit_s']])) / r['full_s']:.3f}-"
+                f"{max(r.get('new_unit_s_all', [r['new_unit_s']])) / r['full_s']:.3f} of the best full build)")
+        if "full_s_all" in r:  # judged like the whole-process ratios: the rounds' median
+            judged = r["new_unit_ratio_median"]
+            measured = (f"{judged:.3f}, median of {len(r['full_s_all'])} interleaved rounds; " + best)
+        else:
+            judged, measured = r["new_unit_ratio"], best
         rows.append((f"refresh, 1 new unit on {r['units_before']} (in-process) / full build",
-                     f"{r['new_unit_ratio']:.3f} ({_s(r['new_unit_s'])} / {_s(r['full_s'])}; best of "
-                     f"{len(r.get('new_unit_s_all', [0]))}, ratios "
-                     f"{min(r.get('new_unit_s_all', [r['new_unit_s']])) / r['full_s']:.3f}-"
-                     f"{max(r.get('new_unit_s_all', [r['new_unit_s']])) / r['full_s']:.3f}"
-                     + (f"; median of the {len(r['full_s_all'])} interleaved rounds' ratios "
-                        f"{r['new_unit_ratio_median']:.3f}" if "full_s_all" in r else "") + ")",
-                     "<= 1/20", _ok(r["new_unit_ratio"] <= 0.05)))
+                     measured, "<= 1/20", _ok(judged <= 0.05)))
         rows.append(("rerun, nothing changed (in-process) / full build",
                      f"{r['unchanged_ratio']:.3f} ({_s(r['unchanged_s'])})", "(reported)", ""))
         if "whole_process_new_unit" in r:
