@@ -215,7 +215,8 @@ def _freeze_imports() -> None:
 def _cmd_build(args, so) -> int:
     from .job import build
 
-    _freeze_imports()
+    if _AS_PROGRAM[0]:  # not when main() runs inside a caller's process (tests, notebooks)
+        _freeze_imports()
 
     rep = build(args.source, args.out, bins=args.bins, rank_error=args.rank_error,
                 columns=args.columns, exclude=args.exclude, weight_column=args.weight_column,
@@ -431,8 +432,12 @@ def _credentials(so: dict) -> tuple[str, ...]:
     return tuple(sorted(set(_secret_values(so)) | set(env), key=len, reverse=True))
 
 
+_AS_PROGRAM = [False]
+
+
 def main(argv=None) -> int:
     """Entry point of the ``sketchmerge`` console script."""
+    _AS_PROGRAM[0] = argv is None  # the console script and ``python -m`` pass no argv
     parser = make_parser()
     args = parser.parse_args(argv)
     try:

@@ -457,3 +457,31 @@ def test_a_blob_vanishing_during_the_build_fails_it_and_keeps_the_published_vers
     monkeypatch.undo()
     after = sketchmerge.load(str(tmp_path / "t"))
     assert after.version == before.version and after.content_sha256 == before.content_sha256
+
+
+def test_a_lone_unit_sketched_in_two_halves_gives_the_same_blob(tmp_path, monkeypatch):
+    # a task alone on its process reads and sketches every other feature on the pool,
+    # with a reader of its own; the blob must be byte for byte the one-thread blob, with
+    # an odd number of features, a column missing from the file and weights
+    import sketchmerge.job as job
+    from sketchmerge.sources import open_dataset
+
+    fr = make_frame(20_000, 3)
+    write_hive(str(tmp_path / "d"), [fr])
+    ds = open_dataset(str(tmp_path / "d"))
+    feats = [c for c in ds.columns if c != "w"][:4] + ["not_in_this_file"]
+    assert len(feats) % 2 == 1
+    spec = job.BuildSpec(features=tuple(feats), weight_column="w", hessian=None,
+                         prediction_column=None, prediction_scale=None, missing_weight="error",
+                         leaf_capacity=300, protocol="file",
+                         dtypes=tuple((f, "float64") for f in feats))
+    blobs = {}
+    for spare in (False, True):
+        monkeypatch.setattr(job._Running, "spare", staticmethod(lambda s=spare: s))
+        blobs[spare] = job.sketch_unit(ds.units[0], spec, "k")
+    assert blobs[True] == blobs[False]
+    from sketchmerge.blob import decode_summary_set
+
+    sets, meta = decode_summary_set(blobs[True])
+    assert list(sets) == feats and meta["rows"] == 20_000
+    assert sets["not_in_this_file"].missing_count == 20_000

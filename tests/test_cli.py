@@ -108,3 +108,33 @@ def test_diff_with_one_version_is_not_an_alert(table, capsys):
     assert doc["features"] == [] and "only one version" in doc["note"]
     # an explicit version that does not exist is still an error (exit 4)
     assert main(["diff", str(table / "t"), "--from", "7"]) == 4
+
+
+def test_build_process_stays_light(tmp_path):
+    # the start-up work a build of float64 Parquet skips: pyarrow.compute is not imported,
+    # and the command (a process of its own) freezes what its imports created, which an
+    # in-process main() (as in these tests) must not do to its caller
+    import subprocess
+    import sys
+
+    src = tmp_path / "src"
+    src.mkdir()
+    pq.write_table(pa.table({"x": np.random.default_rng(1).normal(size=5000),
+                             "w": np.ones(5000)}), src / "a.parquet")
+    probe = ("import gc, sys, runpy\n"
+             "sys.argv = ['sketchmerge', 'build', sys.argv[1], '--out', sys.argv[2], "
+             "'--weight-column', 'w', '--quiet']\n"
+             "try:\n"
+             "    runpy.run_module('sketchmerge.cli', run_name='__main__')\n"
+             "except SystemExit as e:\n"
+             "    assert not e.code, e.code\n"
+             "print('compute' if 'pyarrow.compute' in sys.modules else 'light', gc.get_freeze_count() > 0)\n")
+    out = subprocess.run([sys.executable, "-c", probe, str(src), str(tmp_path / "t")],
+                         capture_output=True, text=True, check=True, timeout=120)
+    assert out.stdout.splitlines()[-1].split() == ["light", "True"], out.stdout + out.stderr
+    import gc
+
+    before = gc.get_freeze_count()
+    assert main(["build", str(src), "--out", str(tmp_path / "t2"), "--weight-column", "w",
+                 "--quiet"]) == 0
+    assert gc.get_freeze_count() == before
